@@ -1,0 +1,1 @@
+"""Board pin maps (installed as ``dvgate.constraints``)."""

@@ -1,0 +1,158 @@
+"""The emulator as the hardware sees it: integers only, derived from a validated config.
+
+Both the gateware (``dvgate.gateware``) and the reference model (``dvgate.sim.model``)
+take a :class:`HardwareParams`; neither reads the TOML config. This module imports
+nothing from Amaranth, so the model stays independent of the gateware.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+#: Cycles from the strobe pin to the synchronized strobe (two flip-flops).
+SYNC_CYC = 2
+#: Cycles from the cycle a strobe is taken to the first output edge (the output register).
+OUTPUT_CYC = 1
+
+SCHEMES = ("binary", "ternary", "burst")
+ORDERS = ("interleaved", "grouped")
+
+#: Width of the strobe counter, the strobe period and the since-last-strobe timer.
+STROBE_COUNT_BITS = 32
+#: Width of the saturating event counters (overruns, clamps, deferrals, saturations).
+EVENT_COUNT_BITS = 16
+
+
+@dataclass(frozen=True)
+class HardwareParams:
+    """Integer description of one emulator.
+
+    Attributes
+    ----------
+    clock_hz : float
+        Clock frequency; one cycle is ``1 / clock_hz`` seconds.
+    names : tuple of str
+        Channel names, in port order (1 to 16 of them).
+    edge_rising : bool
+        True when the strobe's active level is high (rising edge), False for low.
+    min_width_cyc : int
+        Glitch filter: the synchronized strobe must stay active this many cycles.
+    absence_cyc : int
+        ``host_absent`` rises after this many cycles without a strobe.
+    scheme : str
+        ``"binary"``, ``"ternary"`` or ``"burst"``.
+    rest : int
+        Rest pulses per line per strobe (burst only; 0 otherwise).
+    width_cyc, gap_cyc : int
+        Pulse width and the least low time between two pulses of a channel, in cycles.
+    order : str
+        ``"interleaved"`` or ``"grouped"`` (burst only).
+    active_low : bool
+        Output lines idle high and pulse low.
+    frac_bits : int
+        Fraction bits of the rate and of the owed amount (pulses per tick).
+    rate_bits : int
+        Width of the signed rate register.
+    owed_bits : int
+        Integer bits of the signed owed amount (its width is ``owed_bits + frac_bits``).
+    clamp : int
+        Most net pulses one strobe hands over (burst).
+    backlog : int
+        Most pulses waiting in an emitter; a hand-over that would pass it is deferred.
+    init_rates : tuple of int
+        Rate of each channel at reset, fixed point (pulses per tick times ``2**frac_bits``).
+    """
+
+    clock_hz: float
+    names: tuple[str, ...]
+    edge_rising: bool
+    min_width_cyc: int
+    absence_cyc: int
+    scheme: str
+    rest: int
+    width_cyc: int
+    gap_cyc: int
+    order: str
+    active_low: bool
+    frac_bits: int
+    rate_bits: int
+    owed_bits: int
+    clamp: int
+    backlog: int
+    init_rates: tuple[int, ...] = field(default=())
+
+    def __post_init__(self) -> None:
+        checks = [
+            (1 <= len(self.names) <= 16, f"channel count must be 1 to 16, not {len(self.names)}"),
+            (self.scheme in SCHEMES, f"scheme must be one of {SCHEMES}, not {self.scheme!r}"),
+            (self.order in ORDERS, f"order must be one of {ORDERS}, not {self.order!r}"),
+            (self.min_width_cyc >= 1, f"min_width must be at least 1 cycle, not {self.min_width_cyc}"),
+            (self.absence_cyc >= 1, f"absence timeout must be at least 1 cycle, not {self.absence_cyc}"),
+            (self.width_cyc >= 1, f"pulse width must be at least 1 cycle, not {self.width_cyc}"),
+            (self.gap_cyc >= 1, f"pulse gap must be at least 1 cycle, not {self.gap_cyc}"),
+            (self.rest >= 0, f"rest pulses must be 0 or more, not {self.rest}"),
+            (self.frac_bits >= 1, f"frac_bits must be at least 1, not {self.frac_bits}"),
+            (self.rate_bits >= 2, f"rate_bits must be at least 2, not {self.rate_bits}"),
+            (self.clamp >= 1, f"clamp must be at least 1, not {self.clamp}"),
+            (self.backlog >= self.per_strobe_max,
+             f"backlog must be at least {self.per_strobe_max}, not {self.backlog}"),
+            (self.owed_bits >= self.clamp.bit_length() + 2,
+             f"owed_bits must be at least {self.clamp.bit_length() + 2}, not {self.owed_bits}"),
+        ]
+        for ok, message in checks:
+            if not ok:
+                raise ValueError(message)
+        if len(self.init_rates) not in (0, len(self.names)):
+            raise ValueError(f"init_rates needs {len(self.names)} values, not {len(self.init_rates)}")
+        for name, rate in zip(self.names, self.rates, strict=True):
+            if not self.rate_min <= rate <= self.rate_max:
+                raise ValueError(f"initial rate of channel {name!r} ({rate}) does not fit {self.rate_bits} bits")
+
+    @property
+    def n(self) -> int:
+        """Number of channels."""
+        return len(self.names)
+
+    @property
+    def rates(self) -> tuple[int, ...]:
+        """Initial rates, zero where none were given."""
+        return self.init_rates or (0,) * self.n
+
+    @property
+    def rate_min(self) -> int:
+        return -(1 << (self.rate_bits - 1))
+
+    @property
+    def rate_max(self) -> int:
+        return (1 << (self.rate_bits - 1)) - 1
+
+    @property
+    def owed_width(self) -> int:
+        """Width of the signed owed register, fraction included."""
+        return self.owed_bits + self.frac_bits
+
+    @property
+    def owed_min(self) -> int:
+        return -(1 << (self.owed_width - 1))
+
+    @property
+    def owed_max(self) -> int:
+        return (1 << (self.owed_width - 1)) - 1
+
+    @property
+    def latency_cyc(self) -> int:
+        """Cycles from the strobe pin's active edge to the first output edge."""
+        # The filter's M-th active cycle is the cycle the strobe is taken.
+        return SYNC_CYC + (self.min_width_cyc - 1) + OUTPUT_CYC
+
+    @property
+    def per_strobe_max(self) -> int:
+        """Most pulses (both lines) one strobe can hand an emitter."""
+        if self.scheme == "burst":
+            return 2 * self.rest + self.clamp
+        return 1
+
+    @property
+    def pulse_period_cyc(self) -> int:
+        """Cycles from one pulse's rising edge to the next one's on a busy channel."""
+        return self.width_cyc + self.gap_cyc

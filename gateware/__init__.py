@@ -1,0 +1,1 @@
+"""Amaranth components of the emulator (installed as ``dvgate.gateware``)."""

@@ -1,0 +1,1 @@
+"""Reference model, stimulus and testbench runners (installed as ``dvgate.sim``)."""
