@@ -1,0 +1,147 @@
+"""Rate accumulator: integrates one channel's rate and decides what each strobe hands over.
+
+Cycle rules: ``docs/timing.md``, section "Rate accumulator".
+"""
+
+from __future__ import annotations
+
+from amaranth.hdl import Module, Mux, Shape, Signal, signed, unsigned
+from amaranth.lib import wiring
+from amaranth.lib.wiring import In, Out
+
+from dvgate.params import HardwareParams
+
+
+def count_shape(params: HardwareParams) -> Shape:
+    """Shape of the pulses one strobe hands an emitter on one line.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator.
+
+    Returns
+    -------
+    Shape
+        Unsigned, wide enough for ``params.per_strobe_max``.
+    """
+    return unsigned(params.per_strobe_max.bit_length())
+
+
+def net_shape(params: HardwareParams) -> Shape:
+    """Shape of the signed net count ``n`` one strobe asks for (``-clamp .. clamp``)."""
+    return signed(params.clamp.bit_length() + 1)
+
+
+class RateAccumulator(wiring.Component):
+    """The owed amount of one channel, and the count a strobe takes from it.
+
+    Every armed cycle adds the rate (pulses per cycle, ``frac_bits`` fraction bits) to
+    ``owed``; a strobe that is taken and accepted hands ``n`` net pulses to the emitter
+    and takes ``n * 2**frac_bits`` from ``owed``. The register saturates at its limits.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        Scheme, rest pulses, clamp and the widths of rate and owed.
+
+    Attributes
+    ----------
+    rate : Signal(signed(rate_bits)), in
+        The channel's live rate, fixed point.
+    take : Signal(1), in
+        A strobe is taken this cycle (strobe and armed).
+    armed : Signal(1), in
+        Outputs armed; while low, ``owed`` is cleared.
+    accept : Signal(1), in
+        From the emitter: the pulses asked for fit the backlog.
+    n : Signal(signed), out
+        Net count a strobe would ask for now (combinational from ``owed``).
+    new_pos, new_neg : Signal(unsigned), out
+        Pulses a strobe would ask for on each line (rest pulses included).
+    load : Signal(1), out
+        The hand-over happens this cycle (``take & accept``).
+    clamp_evt : Signal(1), out
+        An accepted hand-over was clamped this cycle (burst: ``|whole part| > clamp``).
+    defer_evt : Signal(1), out
+        A taken strobe was deferred this cycle (the backlog would pass its limit).
+    sat_evt : Signal(1), out
+        ``owed`` saturates this cycle.
+    owed : Signal(signed(owed_bits + frac_bits)), out
+        The owed amount, fixed point (a register).
+    """
+
+    def __init__(self, params: HardwareParams) -> None:
+        self._params = params
+        super().__init__({
+            "rate": In(signed(params.rate_bits)),
+            "take": In(1),
+            "armed": In(1),
+            "accept": In(1),
+            "n": Out(net_shape(params)),
+            "new_pos": Out(count_shape(params)),
+            "new_neg": Out(count_shape(params)),
+            "load": Out(1),
+            "clamp_evt": Out(1),
+            "defer_evt": Out(1),
+            "sat_evt": Out(1),
+            "owed": Out(signed(params.owed_width)),
+        })
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        p = self._params
+        frac = p.frac_bits
+        owed = self.owed
+        one = 1 << frac
+
+        clamp = Signal()
+        n_acc = Signal.like(self.n)
+        total = Signal(signed(max(p.owed_width, p.rate_bits) + 2))
+        over  = Signal()
+        under = Signal()
+
+        if p.scheme == "burst":
+            whole = Signal(signed(p.owed_bits + 1))
+            # owed >> frac floors; a negative value with a fraction rounds up to truncate.
+            m.d.comb += whole.eq((owed >> frac) + (owed[-1] & (owed[:frac] != 0)))
+            m.d.comb += [
+                clamp.eq((whole > p.clamp) | (whole < -p.clamp)),
+                self.n.eq(Mux(whole > p.clamp, p.clamp, Mux(whole < -p.clamp, -p.clamp, whole))),
+                self.new_pos.eq(p.rest + Mux(self.n > 0, self.n, 0)),
+                self.new_neg.eq(p.rest + Mux(self.n < 0, -self.n, 0)),
+            ]
+        elif p.scheme == "binary":
+            m.d.comb += [
+                self.new_pos.eq(owed >= 0),
+                self.new_neg.eq(owed < 0),
+                self.n.eq(Mux(owed >= 0, 1, -1)),
+            ]
+        else:  # ternary
+            m.d.comb += [
+                self.new_pos.eq(owed >= one),
+                self.new_neg.eq(owed <= -one),
+                self.n.eq(self.new_pos - self.new_neg),
+            ]
+
+        m.d.comb += [
+            self.load.eq(self.take & self.accept),
+            self.clamp_evt.eq(self.load & clamp),
+            self.defer_evt.eq(self.take & ~self.accept),
+            n_acc.eq(Mux(self.load, self.n, 0)),
+            # Two spare bits: the sum of three terms cannot overflow before the compare.
+            total.eq(owed + self.rate - (n_acc << frac)),
+            over.eq(total > p.owed_max),
+            under.eq(total < p.owed_min),
+            self.sat_evt.eq(self.armed & (over | under)),
+        ]
+
+        with m.If(~self.armed):
+            m.d.sync += owed.eq(0)
+        with m.Elif(over):
+            m.d.sync += owed.eq(p.owed_max)
+        with m.Elif(under):
+            m.d.sync += owed.eq(p.owed_min)
+        with m.Else():
+            m.d.sync += owed.eq(total)
+        return m

@@ -1,0 +1,213 @@
+"""The emulator's top: one strobe detector, rate registers and a pulse pair per channel.
+
+Cycle rules: ``docs/timing.md``. Port names are a contract (board builds, host link,
+testbenches): ``strobe``, ``arm``, ``rate_*``, ``<name>_pos``/``<name>_neg`` and the
+status ports.
+"""
+
+import re
+from pathlib import Path
+
+from amaranth.back import verilog
+from amaranth.hdl import Module, Signal, signed
+from amaranth.lib import data, wiring
+from amaranth.lib.wiring import In, Out
+
+from dvgate.gateware.accumulator import RateAccumulator
+from dvgate.gateware.emitter import PulseEmitter
+from dvgate.gateware.rates import RateRegisters, addr_bits
+from dvgate.gateware.strobe import StrobeDetector
+from dvgate.params import EVENT_COUNT_BITS, STROBE_COUNT_BITS, HardwareParams
+
+_EVENT_MAX = (1 << EVENT_COUNT_BITS) - 1
+#: A channel name must make valid port names (``<name>_pos``).
+_NAME_RE = re.compile(r"^[A-Za-z][0-9A-Za-z_]*$")
+
+
+class StatusFlags(data.Struct):
+    """Sticky event flags, set since reset."""
+
+    overrun: 1
+    clamped: 1
+    deferred: 1
+    saturated: 1
+
+
+class Emulator(wiring.Component):
+    """Pulse-output accelerometer emulator for ``params.n`` channels.
+
+    Latency from the strobe pin's active edge to the first output edge is
+    ``params.latency_cyc`` (``min_width_cyc + 2``) cycles on every channel.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator's integers.
+
+    Attributes
+    ----------
+    strobe : Signal(1), in
+        Raw strobe pin, physical level (active low when ``edge_rising`` is False).
+    arm : Signal(1), in
+        Outputs enabled; registered once (``armed(k+1) = arm(k)``).
+    rate_addr : Signal(max(1, ceil_log2(n))), in
+        Channel whose shadow rate ``rate_we`` writes.
+    rate_data : Signal(signed(rate_bits)), in
+        Rate to write, fixed point.
+    rate_we : Signal(1), in
+        Write ``rate_data`` to the shadow of ``rate_addr``.
+    rate_commit : Signal(1), in
+        Copy every shadow to the live rates (a write in the same cycle included).
+    <name>_pos, <name>_neg : Signal(1), out
+        Output lines of each channel, physical level (logical XOR ``active_low``);
+        idle while not armed.
+    strobes, period : Signal(32), out
+        Strobe count and the cycles between the last two strobes.
+    host_absent : Signal(1), out
+        No strobe for ``absence_cyc`` cycles.
+    flags : StatusFlags, out
+        Sticky ``overrun``, ``clamped``, ``deferred``, ``saturated``.
+    overruns, clamps, deferrals, saturations : Signal(16), out
+        Cycles in which any channel had the event; saturating.
+    detector : StrobeDetector
+        The strobe detector (for testbenches).
+    rate_regs : RateRegisters
+        The rate registers (for testbenches and the host link).
+    accumulators : list of RateAccumulator
+        One per channel, in port order (for testbenches).
+    emitters : list of PulseEmitter
+        One per channel, in port order (for testbenches).
+    """
+
+    def __init__(self, params: HardwareParams) -> None:
+        names = params.names
+        for name in names:
+            if not _NAME_RE.match(name):
+                raise ValueError(
+                    f"channel name {name!r} cannot name a port: use a letter, then letters, "
+                    "digits or '_'")
+        if len(set(names)) != len(names):
+            raise ValueError(f"channel names must differ, not {list(names)!r}")
+        self._params = params
+
+        members = {
+            "strobe": In(1),
+            "arm": In(1),
+            "rate_addr": In(addr_bits(params)),
+            "rate_data": In(signed(params.rate_bits)),
+            "rate_we": In(1),
+            "rate_commit": In(1),
+        }
+        for name in names:
+            members[f"{name}_pos"] = Out(1)
+            members[f"{name}_neg"] = Out(1)
+        members.update({
+            "strobes": Out(STROBE_COUNT_BITS),
+            "period": Out(STROBE_COUNT_BITS),
+            "host_absent": Out(1),
+            "flags": Out(StatusFlags),
+            "overruns": Out(EVENT_COUNT_BITS),
+            "clamps": Out(EVENT_COUNT_BITS),
+            "deferrals": Out(EVENT_COUNT_BITS),
+            "saturations": Out(EVENT_COUNT_BITS),
+        })
+        super().__init__(members)
+
+        # Built here, not in elaborate(), so testbenches can reach their signals.
+        self.detector = StrobeDetector(edge_rising=params.edge_rising,
+                                       min_width_cyc=params.min_width_cyc,
+                                       absence_cyc=params.absence_cyc)
+        self.rate_regs = RateRegisters(params)
+        self.accumulators = [RateAccumulator(params) for _ in names]
+        self.emitters = [PulseEmitter(params) for _ in names]
+
+    def output_ports(self, channel: int) -> tuple[Signal, Signal]:
+        """The physical ``(pos, neg)`` output ports of channel ``channel``."""
+        name = self._params.names[channel]
+        return getattr(self, f"{name}_pos"), getattr(self, f"{name}_neg")
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        p = self._params
+
+        m.submodules.detector = det = self.detector
+        m.submodules.rate_regs = regs = self.rate_regs
+
+        armed     = Signal()
+        take      = Signal()
+        overrun   = Signal(p.n)
+        clamped   = Signal(p.n)
+        deferred  = Signal(p.n)
+        saturated = Signal(p.n)
+
+        m.d.sync += armed.eq(self.arm)
+        m.d.comb += [
+            det.pin.eq(self.strobe),
+            take.eq(det.stb & armed),
+            self.strobes.eq(det.strobes),
+            self.period.eq(det.period),
+            self.host_absent.eq(det.host_absent),
+            regs.addr.eq(self.rate_addr),
+            regs.data.eq(self.rate_data),
+            regs.we.eq(self.rate_we),
+            regs.commit.eq(self.rate_commit),
+        ]
+
+        for i, (name, acc, em) in enumerate(zip(p.names, self.accumulators, self.emitters,
+                                                strict=True)):
+            m.submodules[f"{name}_acc"] = acc
+            m.submodules[f"{name}_emit"] = em
+            pos_port, neg_port = self.output_ports(i)
+            m.d.comb += [
+                acc.rate.eq(regs.rates[i]),
+                acc.take.eq(take),
+                acc.armed.eq(armed),
+                acc.accept.eq(em.accept),
+                em.load.eq(acc.load),
+                em.new_pos.eq(acc.new_pos),
+                em.new_neg.eq(acc.new_neg),
+                em.armed.eq(armed),
+                # armed(k+1) = arm(k): the output registers see the next armed value.
+                em.armed_next.eq(self.arm),
+                pos_port.eq(em.pos ^ p.active_low),
+                neg_port.eq(em.neg ^ p.active_low),
+                overrun[i].eq(take & em.busy),
+                clamped[i].eq(acc.clamp_evt),
+                deferred[i].eq(acc.defer_evt),
+                saturated[i].eq(acc.sat_evt),
+            ]
+
+        events = [
+            (overrun, self.flags.overrun, self.overruns),
+            (clamped, self.flags.clamped, self.clamps),
+            (deferred, self.flags.deferred, self.deferrals),
+            (saturated, self.flags.saturated, self.saturations),
+        ]
+        for per_channel, flag, counter in events:
+            any_channel = per_channel.any()
+            with m.If(any_channel):
+                m.d.sync += flag.eq(1)
+                with m.If(counter != _EVENT_MAX):
+                    m.d.sync += counter.eq(counter + 1)
+        return m
+
+
+def write_verilog(params: HardwareParams, path: str | Path | None = None) -> str:
+    """Verilog of the emulator's top, module ``dvgate_top``.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator.
+    path : str or Path, optional
+        Also write the text to this file.
+
+    Returns
+    -------
+    str
+        The Verilog source.
+    """
+    text = verilog.convert(Emulator(params), name="dvgate_top")
+    if path is not None:
+        Path(path).write_text(text)
+    return text
