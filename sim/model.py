@@ -106,8 +106,8 @@ class _Emitter:
         if self.pend[0] + self.pend[1] and self.next_start <= cycle:
             self._start(cycle)
 
-    def disarm(self, cycle: int) -> None:
-        """First disarmed cycle: cut a pulse in flight, drop any not yet visible, clear."""
+    def cut(self, cycle: int) -> None:
+        """Outputs forced idle from ``cycle``: end a pulse in flight, drop any not yet visible."""
         self.advance_to(cycle)
         if self.record:
             while self.pulses and self.pulses[-1][1] >= cycle:
@@ -118,6 +118,10 @@ class _Emitter:
                 self.pulses[-1] = (line, rise, cycle)
         elif self.last_start is not None and self.last_start + 1 >= cycle:
             self.counts[self.last] -= 1
+
+    def disarm(self, cycle: int) -> None:
+        """First disarmed cycle: cut the outputs and clear the emitter."""
+        self.cut(cycle)
         self.pend = [0, 0]
         self.last = NEG
         self.last_start = None
@@ -240,6 +244,8 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
                     sat_spans.append((point, point + 1))
                 k = point + 1
         emitter.advance_to(n_cyc)
+        if on and not is_armed(n_cyc):
+            emitter.cut(n_cyc)  # disarmed at the last observed cycle: the books are still those of N
         books.append(ChannelState(owed=acc, pend_pos=emitter.pend[POS], pend_neg=emitter.pend[NEG]))
         emitters.append(emitter)
 

@@ -79,6 +79,8 @@ class Stimulus:
         if cyc and cyc[0] < 1:
             raise ValueError(f"rate change at cycle {cyc[0]}: changes start at cycle 1")
         arm = [c for c, _ in self.arm_changes]
+        if arm and arm[0] < 0:
+            raise ValueError(f"arm change at cycle {arm[0]}: cycles start at 0")
         if any(b <= a for a, b in pairwise(arm)):
             raise ValueError("arm_changes must be strictly increasing in cycle")
 

@@ -205,3 +205,14 @@ def cases(draw):
 def test_random_configs_and_programs(case):
     params, stim = case
     assert_same(params, stim)
+
+
+def test_disarm_on_the_last_cycle(tmp_path):
+    # Arm falls at N - 1, so cycle N is the first disarmed one: its output is idle, the books are N's.
+    params = HardwareParams(
+        clock_hz=1e6, names=("c0",), edge_rising=False, min_width_cyc=3, absence_cyc=50, scheme="burst", rest=1,
+        width_cyc=1, gap_cyc=2, order="interleaved", active_low=False, frac_bits=2, rate_bits=3, owed_bits=3,
+        clamp=1, backlog=3, init_rates=(1,),
+    )
+    stim = Stimulus(cycles=20, strobe_edges=(9,), arm_changes=((0, True), (1, False), (2, True), (19, False)))
+    assert_same(params, stim, tmp_path)
