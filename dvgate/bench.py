@@ -1,0 +1,1165 @@
+"""Bench check: a logic-analyzer capture of the real pins against the reference model.
+
+:func:`check_capture` reads a capture (:mod:`dvgate.sim.capture`), finds the strobe's
+edges and every pulse, drives the reference model with the capture's own strobe edges
+(and ``arm`` line and rate program), and compares the whole pulse sequence with the
+model's prediction. :func:`write_report` writes the report folder (text, JSON, CSV
+tables and plots).
+
+Matching rule
+-------------
+Let ``T`` be the emulator's clock period (config), ``Ts`` the analyzer's sample period,
+``J`` the declared timing uncertainty of one captured edge beyond sampling (default 0)
+and ``p`` the clock tolerance (default 100 ppm, for the emulator's and the analyzer's
+oscillators together).
+
+1. **Time base.** A capture time ``t`` is the emulator cycle
+   ``c(t) = round((t - t0) / T - phi) + 1``, ``t0`` the capture's first sample and
+   ``phi`` the mean phase of the strobe's edges within a clock period (a circular mean,
+   so a simulated capture, whose edges all sit on the clock grid, converts exactly).
+   The model runs on the strobe's edges, the ``arm`` line (or armed from ``t0`` when the
+   capture has none) and the program's rate changes, all converted this way.
+2. **Predicted times.** A channel's pulses come in bursts, ``W + G`` cycles apart; the
+   first pulse of a burst rises ``L = M + 2`` cycles after the pin edge of the strobe
+   that started it. Every predicted edge at cycle ``k`` is placed at
+   ``t_s + (k - c_s) T``, where ``t_s`` is the captured time of that strobe's edge and
+   ``c_s`` its cycle, so the prediction follows the capture's own clock from strobe to
+   strobe and does not drift over a long capture.
+3. **Window.** A captured rising edge at ``t_c`` matches a predicted one at ``t_p`` on the
+   same line when ``-(T + Ts + 2J + d) <= t_c - t_p <= Ts + 2J + d`` with
+   ``d = p |t_p - t_s|``. Why: the strobe's pin edge happened up to ``Ts`` before the
+   sample that shows it, the emulator registers it at its next clock edge (up to ``T``
+   later), and the output edge is seen up to ``Ts`` after it happens. Predicted and
+   captured pulses are paired in time order, each line on its own; a predicted pulse
+   left without a partner is **missing**, a captured one is **extra**.
+4. **Lengths.** A matched pulse's width must equal the predicted width within
+   ``Ts + 2J + p w`` (both edges come from one clock; each is seen up to ``Ts`` late), or
+   it is a **width** discrepancy. The low time between two pulses the model sends back
+   to back is held to the same bound (a **gap** discrepancy, unless a width discrepancy
+   of either pulse explains it).
+5. **Sampling limit.** Edges are known to one sample period. A pulse or gap narrower
+   than two samples is flagged as unmeasurable (its width is not reported, not
+   guessed); a capture whose sample period exceeds half the configured width or gap
+   is refused. Pulses before the capture's first strobe, or whose window passes the
+   capture's end, are counted as not compared.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import tomllib
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from dvgate.config import Config
+from dvgate.errors import UserError
+from dvgate.sim.capture import Capture, CaptureMap, SignalRef, Trace, read_capture
+from dvgate.sim.model import armed_intervals, run_model
+from dvgate.sim.stimulus import integral
+from dvgate.sim.trace import LINE_NAMES, NEG, POS, RateChange, Stimulus
+from dvgate.units import QuantityError, format_si, parse_quantity
+
+if TYPE_CHECKING:
+    from dvgate.sim.program import Program
+
+__all__ = [
+    "BenchReport", "Bounds", "ChannelCheck", "Discrepancy", "RateProgram", "RateStep", "Stats",
+    "check_capture", "load_rate_program", "parse_time", "write_report", "DEFAULT_CLOCK_PPM",
+]
+
+#: Clock tolerance of the emulator's and the analyzer's oscillators together, ppm. Crystal
+#: oscillators are commonly specified to tens of ppm (from memory); 100 ppm covers two.
+DEFAULT_CLOCK_PPM = 100.0
+
+
+# -- the program: rate changes the model needs ------------------------------------------
+
+
+@dataclass(frozen=True)
+class RateStep:
+    """From ``at`` seconds after arming, ``channel`` is commanded ``rate`` (SI)."""
+
+    at: float
+    channel: int
+    rate: float
+
+
+@dataclass(frozen=True)
+class RateProgram:
+    """The rates commanded during a capture.
+
+    Attributes
+    ----------
+    steps : tuple of RateStep
+        A hand-written program (TOML): sorted by time, times from the ``arm`` input's
+        rise. Channels not named keep the config's initial rate.
+    source : str
+        The file, for the report.
+    segments : Program or None
+        A program saved by ``dvgate run`` (``program.npz``, :mod:`dvgate.sim.program`):
+        its tick 0 is the first armed cycle, the cycle after the ``arm`` input rises,
+        as ``dvgate run`` places it; after its last segment every rate is zero.
+    """
+
+    steps: tuple[RateStep, ...]
+    source: str
+    segments: Program | None = None
+
+
+def load_rate_program(path: str | Path, config: Config) -> RateProgram:
+    """Read the program run during a capture: ``program.npz`` or a TOML file of steps.
+
+    A ``.npz`` file is a program saved by ``dvgate run`` (:func:`dvgate.sim.program.load_program`),
+    checked against the config. A TOML file holds ``[[step]]`` tables, each with ``at``
+    (time after the ``arm`` input rises, such as ``"250 ms"``) and a rate for each
+    channel that changes then (``x = "1.5 g"``, ``z = "-0.2 rad/s"``); a channel not
+    named keeps its rate. Steps are in time order::
+
+        [[step]]
+        at = "0 s"
+        x = "1 g"
+
+        [[step]]
+        at = "20 ms"
+        x = "-0.5 g"
+        y = "2 m/s^2"
+
+    Raises
+    ------
+    UserError
+        Naming the step, the field, the value and what is allowed.
+    """
+    path = Path(path)
+    if path.suffix.lower() == ".npz":
+        from dvgate.sim.program import check_program, load_program
+
+        segments = load_program(path)
+        check_program(segments, config)
+        return RateProgram((), str(path), segments)
+    return _load_steps(path, config)
+
+
+def _load_steps(path: Path, config: Config) -> RateProgram:
+    path = Path(path)
+    try:
+        with path.open("rb") as handle:
+            raw = tomllib.load(handle)
+    except FileNotFoundError:
+        raise UserError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise UserError(f"{path}: is a folder, not a program file") from None
+    except tomllib.TOMLDecodeError as error:
+        raise UserError(f"{path}: not valid TOML: {error}") from None
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not a text file") from None
+    extra = sorted(set(raw) - {"step"})
+    if extra:
+        raise UserError(f"{path}: unknown key {extra[0]!r}; allowed: [[step]] tables")
+    steps_raw = raw.get("step", [])
+    if not isinstance(steps_raw, list) or not steps_raw:
+        raise UserError(f"{path}: step = {steps_raw!r}: allowed: one or more [[step]] tables")
+    names = [ch.name for ch in config.channels]
+    steps: list[RateStep] = []
+    last_at = -math.inf
+    for index, entry in enumerate(steps_raw):
+        where = f"{path}: step[{index}]"
+        if not isinstance(entry, dict):
+            raise UserError(f"{where} = {entry!r}: allowed: a table with 'at' and channel rates")
+        if "at" not in entry:
+            raise UserError(f"{where}: 'at' is missing: the time from arming, such as '10 ms'")
+        try:
+            at, _ = parse_quantity(entry["at"], "time")
+        except QuantityError as error:
+            raise UserError(f"{where}.at = {entry['at']!r}: {error}") from None
+        if at < 0 or at < last_at:
+            raise UserError(f"{where}.at = {entry['at']!r}: allowed: 0 or later, and not before the step before")
+        last_at = at
+        for key, text in entry.items():
+            if key == "at":
+                continue
+            if key not in names:
+                raise UserError(f"{where}.{key}: no such channel; channels: {', '.join(names)}")
+            ch = names.index(key)
+            channel = config.channels[ch]
+            kind = "acceleration" if channel.unit == "m/s" else "angular_rate"
+            try:
+                rate, _ = parse_quantity(text, kind)
+            except QuantityError as error:
+                raise UserError(f"{where}.{key} = {text!r}: {error}") from None
+            if abs(rate) > channel.range:
+                raise UserError(f"{where}.{key} = {text!r}: allowed: within the channel's full scale "
+                                f"(+/-{channel.range:.6g} {channel.rate_unit})")
+            steps.append(RateStep(at, ch, rate))
+    return RateProgram(tuple(steps), str(path))
+
+
+def parse_time(text: str, field_name: str) -> float:
+    """A time written with its unit (``"1.5 ms"``), in seconds; may be negative (pre-trigger)."""
+    try:
+        value, _ = parse_quantity(text, "time")
+    except QuantityError as error:
+        raise UserError(f"{field_name} = {text!r}: {error}") from None
+    return value
+
+
+# -- bounds and statistics --------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Bounds:
+    """What the clock and the sampling allow a captured edge to differ from the model.
+
+    Attributes
+    ----------
+    clock_period : float
+        The emulator's clock period ``T``, seconds.
+    sample_period : float
+        The analyzer's sample period ``Ts``, seconds.
+    jitter : float
+        Timing uncertainty ``J`` of one captured edge beyond sampling, seconds.
+    clock_ppm : float
+        Clock tolerance ``p``, ppm.
+    """
+
+    clock_period: float
+    sample_period: float
+    jitter: float
+    clock_ppm: float
+
+    def window(self, span: float) -> tuple[float, float]:
+        """Allowed ``captured - predicted`` for an edge ``span`` seconds after its strobe."""
+        slack = self.sample_period + 2 * self.jitter + self.clock_ppm * 1e-6 * abs(span)
+        return -(self.clock_period + slack), slack
+
+    def length(self, length: float) -> float:
+        """Allowed difference of a width or a gap of ``length`` seconds."""
+        return self.sample_period + 2 * self.jitter + self.clock_ppm * 1e-6 * abs(length)
+
+    @property
+    def measurable(self) -> float:
+        """The narrowest pulse or gap measured: two sample periods."""
+        return 2 * self.sample_period
+
+    def describe(self) -> str:
+        return (f"edges known to one sample period ({format_si(self.sample_period, 's')}); widths and gaps "
+                f"within +/-{format_si(self.length(0), 's')} (+{self.clock_ppm:g} ppm); edges within "
+                f"-{format_si(-self.window(0)[0], 's')}/+{format_si(self.window(0)[1], 's')} of the model; "
+                f"pulses narrower than {format_si(self.measurable, 's')} are unmeasurable")
+
+
+@dataclass(frozen=True)
+class Stats:
+    """Count, minimum, median and maximum of a measurement (seconds); None when empty."""
+
+    count: int
+    min: float | None
+    median: float | None
+    max: float | None
+
+    @classmethod
+    def of(cls, values: Sequence[float] | np.ndarray) -> Stats:
+        data = np.asarray(values, dtype=np.float64)
+        if data.size == 0:
+            return cls(0, None, None, None)
+        return cls(int(data.size), float(data.min()), float(np.median(data)), float(data.max()))
+
+    def text(self) -> str:
+        if not self.count:
+            return "none measured"
+        return (f"{format_si(self.min, 's')} / {format_si(self.median, 's')} / {format_si(self.max, 's')} "
+                f"(n={self.count})")
+
+
+@dataclass(frozen=True)
+class Discrepancy:
+    """One place where the capture and the model disagree.
+
+    Attributes
+    ----------
+    kind : str
+        ``"missing"`` (predicted, not captured), ``"extra"`` (captured, not predicted),
+        ``"width"`` or ``"gap"`` (out of bound).
+    channel, line : str
+        Channel name and ``"pos"`` or ``"neg"``.
+    time : float
+        Capture time of the pulse's rising edge (predicted for a missing pulse).
+    predicted, captured : float or None
+        Missing/extra: the rise times; width: the widths; gap: the low times (seconds).
+    """
+
+    kind: str
+    channel: str
+    line: str
+    time: float
+    predicted: float | None
+    captured: float | None
+
+    def text(self) -> str:
+        where = f"{self.channel}_{self.line} at {format_si(self.time, 's', 9)}"
+        if self.kind == "missing":
+            return f"missing: {where}: the model predicts a pulse; none captured in its window"
+        if self.kind == "extra":
+            return f"extra: {where}: a captured pulse the model does not predict"
+        assert self.predicted is not None and self.captured is not None
+        return (f"{self.kind}: {where}: {format_si(self.captured, 's')} captured, "
+                f"{format_si(self.predicted, 's')} predicted")
+
+
+@dataclass(frozen=True)
+class ChannelCheck:
+    """One channel's comparison.
+
+    Attributes
+    ----------
+    predicted, captured : tuple of (int, int)
+        Pulses on the positive and negative lines, over the compared span.
+    matched, missing, extra, width_errors, gap_errors : int
+        Outcome of the matching.
+    unmeasurable : int
+        Captured pulses or back-to-back gaps narrower than two samples.
+    not_compared : int
+        Captured pulses before the first strobe or active at the capture's start, and
+        predicted ones whose window passes the capture's end.
+    widths, gaps, latency : Stats
+        Captured widths (measurable ones), low times between pulses sent back to back,
+        and delays from a strobe's pin edge to the first edge it causes.
+    latency_out : int
+        Delays outside the bound.
+    least_low : float or None
+        The shortest low time between any two pulses of the channel.
+    net_captured, net_model : int
+        Positive minus negative pulses over the whole capture.
+    dv_captured, dv_model, dv_program : float
+        Net delta-V (m/s or rad): captured and predicted pulses times the weight, and the
+        commanded rate integrated over the armed time.
+    held_model : float
+        Pulses the model still holds at the end (owed plus pending, net): what separates
+        the model's delta-V from the program's.
+    running_max : int
+        Largest difference of the running net count, captured minus model, at a strobe.
+    flips : int
+        Neighbouring strobe intervals whose net counts differ from the model by +1 and -1:
+        a pulse handed over one strobe apart from the model (see ``docs/bench.md``).
+    unknown : int
+        x or z values read on the channel's lines.
+    """
+
+    name: str
+    unit: str
+    weight: float
+    predicted: tuple[int, int]
+    captured: tuple[int, int]
+    matched: int
+    missing: int
+    extra: int
+    width_errors: int
+    gap_errors: int
+    unmeasurable: int
+    not_compared: int
+    widths: Stats
+    gaps: Stats
+    latency: Stats
+    latency_out: int
+    least_low: float | None
+    net_captured: int
+    net_model: int
+    dv_captured: float
+    dv_model: float
+    dv_program: float
+    held_model: float
+    running_max: int
+    flips: int
+    unknown: int
+
+    @property
+    def discrepancies(self) -> int:
+        return self.missing + self.extra + self.width_errors + self.gap_errors
+
+
+@dataclass(frozen=True, eq=False)
+class BenchReport:
+    """Everything the bench check found.
+
+    Attributes
+    ----------
+    capture : Capture
+        What was read.
+    bounds : Bounds
+        The sampling bound used.
+    expected : dict of str to float
+        Configured width, gap and latency (seconds) and the latency window.
+    channels : tuple of ChannelCheck
+        Per channel.
+    discrepancies : tuple of Discrepancy
+        Every discrepancy, in time order.
+    strobe_times : ndarray
+        Capture time of every strobe pin edge the model was driven with.
+    strobe_counts : ndarray of int, shape (strobes, channels, 2, 2)
+        Pulses per strobe interval: ``[strobe, channel, line, 0]`` captured,
+        ``[..., 1]`` predicted.
+    strobe_mismatches : int
+        Strobe intervals whose counts differ on some line.
+    verdict : str
+        ``"pass"``, ``"fail"`` or ``"inconclusive"``.
+    notes : tuple of str
+        Everything worth knowing that is not a discrepancy.
+    clock_ppm, clock_ppm_error : float or None
+        The emulator's clock against the analyzer's, from the captured spacing of the
+        bursts' pulses (None with fewer than three bursts of two pulses or more).
+    """
+
+    capture: Capture
+    config_source: str
+    program_source: str
+    signals: dict[str, SignalRef]
+    bounds: Bounds
+    expected: dict[str, float]
+    channels: tuple[ChannelCheck, ...]
+    discrepancies: tuple[Discrepancy, ...]
+    strobe_times: np.ndarray
+    strobe_counts: np.ndarray
+    strobe_mismatches: int
+    verdict: str
+    notes: tuple[str, ...]
+    model_cycles: int
+    clock_ppm: float | None
+    clock_ppm_error: float | None
+    lines: dict[str, Trace] = field(repr=False)
+    predicted: dict[str, np.ndarray] = field(repr=False)
+    widths_all: np.ndarray = field(repr=False)
+    latency_all: np.ndarray = field(repr=False)
+
+    def summary(self) -> str:
+        """The report as text."""
+        cap = self.capture
+        out = io.StringIO()
+        w = out.write
+        w(f"bench check of {cap.source} against {self.config_source}\n")
+        w(f"verdict: {self.verdict.upper()}\n\n")
+        w(f"capture: {cap.kind.upper()}, {format_si(cap.end - cap.start, 's')} from "
+          f"{format_si(cap.start, 's')}, {cap.samples} {'rows' if cap.kind == 'csv' else 'time stamps'}; "
+          f"sample period {format_si(cap.sample_period, 's')} ({cap.sample_period_from})\n")
+        w(f"sampling bound: {self.bounds.describe()}\n")
+        w(f"program: {self.program_source}; model run: {self.model_cycles} cycles\n")
+        mapped = ", ".join(f"{role}={'~' if ref.inverted else ''}{self.lines[role].name}"
+                           for role, ref in self.signals.items() if role in self.lines)
+        w(f"lines: {mapped}\n")
+        e = self.expected
+        w(f"configured: width {format_si(e['width'], 's')}, gap {format_si(e['gap'], 's')}, latency "
+          f"{format_si(e['latency'], 's')} (window {format_si(e['latency_lo'], 's')} to "
+          f"{format_si(e['latency_hi'], 's')})\n")
+        w(f"strobes: {len(self.strobe_times)}; strobe intervals whose pulse counts differ from the model: "
+          f"{self.strobe_mismatches}\n\n")
+        for ch in self.channels:
+            w(f"channel {ch.name}: matched {ch.matched}, missing {ch.missing}, extra {ch.extra}, "
+              f"width {ch.width_errors}, gap {ch.gap_errors}; unmeasurable {ch.unmeasurable}, "
+              f"not compared {ch.not_compared}\n")
+            w(f"  pulses pos/neg: captured {ch.captured[0]}/{ch.captured[1]}, "
+              f"model {ch.predicted[0]}/{ch.predicted[1]}\n")
+            w(f"  width min/median/max: {ch.widths.text()}\n")
+            w(f"  gap (back to back) min/median/max: {ch.gaps.text()}; least low time "
+              f"{'n/a' if ch.least_low is None else format_si(ch.least_low, 's')}\n")
+            w(f"  latency min/median/max: {ch.latency.text()}; outside the window: {ch.latency_out}\n")
+            unit = ch.unit
+            w(f"  net delta-V: captured {ch.dv_captured:+.6g} {unit} ({ch.net_captured:+d} pulses), model "
+              f"{ch.dv_model:+.6g} {unit} ({ch.net_model:+d}), program {ch.dv_program:+.6g} {unit} "
+              f"(captured - program = {(ch.dv_captured - ch.dv_program) / ch.weight:+.3f} pulses; the model "
+              f"holds {ch.held_model:+.3f} owed or pending at the end)\n")
+            w(f"  running net count, captured - model, largest at a strobe: {ch.running_max} pulse(s); "
+              f"pulses handed over one strobe apart: {ch.flips}\n")
+            if ch.unknown:
+                w(f"  x/z values read on its lines: {ch.unknown}\n")
+        if self.discrepancies:
+            w(f"\ndiscrepancies ({len(self.discrepancies)}; all in discrepancies.csv):\n")
+            for item in self.discrepancies[:20]:
+                w(f"  {item.text()}\n")
+            if len(self.discrepancies) > 20:
+                w(f"  ... and {len(self.discrepancies) - 20} more\n")
+        if self.notes:
+            w("\nnotes:\n")
+            for note in self.notes:
+                w(f"  - {note}\n")
+        return out.getvalue()
+
+    def to_json(self) -> dict[str, Any]:
+        """The report as plain data."""
+        def stats(s: Stats) -> dict[str, Any]:
+            return {"count": s.count, "min": s.min, "median": s.median, "max": s.max}
+
+        return {
+            "verdict": self.verdict,
+            "capture": {"source": self.capture.source, "format": self.capture.kind, "start": self.capture.start,
+                        "end": self.capture.end, "sample_period": self.capture.sample_period,
+                        "sample_period_from": self.capture.sample_period_from, "samples": self.capture.samples},
+            "config": self.config_source,
+            "program": self.program_source,
+            "bounds": {"clock_period": self.bounds.clock_period, "sample_period": self.bounds.sample_period,
+                       "jitter": self.bounds.jitter, "clock_ppm": self.bounds.clock_ppm,
+                       "length": self.bounds.length(0), "window": list(self.bounds.window(0)),
+                       "measurable": self.bounds.measurable},
+            "expected": self.expected,
+            "strobes": len(self.strobe_times),
+            "strobe_mismatches": self.strobe_mismatches,
+            "clock_ppm": self.clock_ppm, "clock_ppm_error": self.clock_ppm_error,
+            "channels": [{
+                "name": ch.name, "unit": ch.unit, "weight": ch.weight,
+                "predicted": list(ch.predicted), "captured": list(ch.captured),
+                "matched": ch.matched, "missing": ch.missing, "extra": ch.extra,
+                "width_errors": ch.width_errors, "gap_errors": ch.gap_errors,
+                "unmeasurable": ch.unmeasurable, "not_compared": ch.not_compared,
+                "widths": stats(ch.widths), "gaps": stats(ch.gaps), "latency": stats(ch.latency),
+                "latency_out": ch.latency_out, "least_low": ch.least_low,
+                "net_captured": ch.net_captured, "net_model": ch.net_model,
+                "dv_captured": ch.dv_captured, "dv_model": ch.dv_model, "dv_program": ch.dv_program,
+                "held_model": ch.held_model, "running_max": ch.running_max, "flips": ch.flips,
+                "unknown": ch.unknown,
+            } for ch in self.channels],
+            "discrepancies": [{"kind": d.kind, "channel": d.channel, "line": d.line, "time": d.time,
+                               "predicted": d.predicted, "captured": d.captured} for d in self.discrepancies],
+            "notes": list(self.notes),
+        }
+
+
+# -- the check ---------------------------------------------------------------------------
+
+
+def _logical(trace: Trace, inverted: bool, active_low: bool) -> Trace:
+    """The line as the emulator means it: 1 while active."""
+    return trace.inverted() if inverted != active_low else trace
+
+
+def _pulses(trace: Trace) -> tuple[np.ndarray, np.ndarray, int]:
+    """Rises and falls (NaN while still active at the end) of a logical line.
+
+    Returns the rises, the matching falls and 1 when a pulse is already active at the
+    capture's start (its rise is not in the capture).
+    """
+    rises = trace.edges(1)
+    falls = trace.edges(0)
+    cut_start = 0
+    if trace.initial == 1:
+        falls = falls[1:] if falls.size else falls
+        cut_start = 1
+    out_falls = np.full(rises.shape, np.nan)
+    out_falls[: falls.size] = falls[: rises.size]
+    return rises, out_falls, cut_start
+
+
+def _match(pred: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+           got: np.ndarray) -> tuple[list[tuple[int, int]], list[int], list[int]]:
+    """Pair predicted and captured rises in time order within their windows."""
+    pairs: list[tuple[int, int]] = []
+    missing: list[int] = []
+    extra: list[int] = []
+    i = j = 0
+    n_p, n_c = len(pred), len(got)
+    while i < n_p and j < n_c:
+        dev = got[j] - pred[i]
+        if dev < lo[i]:
+            extra.append(j)
+            j += 1
+        elif dev > hi[i]:
+            missing.append(i)
+            i += 1
+        else:
+            if i + 1 < n_p:
+                nxt = got[j] - pred[i + 1]
+                if lo[i + 1] <= nxt <= hi[i + 1]:
+                    mid, mid_next = (lo[i] + hi[i]) / 2, (lo[i + 1] + hi[i + 1]) / 2
+                    if abs(nxt - mid_next) < abs(dev - mid):
+                        missing.append(i)  # the captured pulse belongs to the next one
+                        i += 1
+                        continue
+            pairs.append((i, j))
+            i += 1
+            j += 1
+    missing.extend(range(i, n_p))
+    extra.extend(range(j, n_c))
+    return pairs, missing, extra
+
+
+def _cycle_converter(capture: Capture, clock_hz: float, strobe_times: np.ndarray):
+    """``c(t)`` of the matching rule: capture seconds to emulator cycles."""
+    if strobe_times.size:
+        x = (strobe_times - capture.start) * clock_hz
+        angle = np.angle(np.mean(np.exp(2j * np.pi * x)))
+        phase = float(angle / (2 * np.pi)) % 1.0
+    else:
+        phase = 0.0
+
+    def convert(t: np.ndarray | float) -> np.ndarray:
+        x = (np.asarray(t, dtype=np.float64) - capture.start) * clock_hz - phase
+        return np.rint(x).astype(np.int64) + 1
+
+    return convert
+
+
+def check_capture(capture_path: str | Path, config: Config, *, program: RateProgram | None = None,
+                  capture_map: CaptureMap | None = None, program_start: float | None = None) -> BenchReport:
+    """Read a capture and compare it with the reference model (the matching rule above).
+
+    Parameters
+    ----------
+    capture_path : str or Path
+        A VCD or CSV capture of the emulator's pins.
+    config : Config
+        The emulator's config (clock, strobe, pulse shape, channels).
+    program : RateProgram, optional
+        Rate changes during the capture; without one, the config's initial rates.
+    capture_map : CaptureMap, optional
+        Which capture signal is which line, and the capture's settings.
+    program_start : float, optional
+        Capture time (s) at which the program starts; by default, when the ``arm``
+        input rises (the capture's start without an arm line).
+
+    Returns
+    -------
+    BenchReport
+
+    Raises
+    ------
+    UserError
+        For a bad capture, a line the capture lacks, a capture without strobe edges, or
+        a sample rate too slow for the configured pulse width or gap.
+    """
+    cmap = capture_map or CaptureMap()
+    hw = config.hw
+    names = [ch.name for ch in config.channels]
+    signals = cmap.resolve(names)
+    required = [signals[r].name for r in ["strobe"] + [f"{n}_{ln}" for n in names for ln in LINE_NAMES]]
+    optional = [signals["arm"].name] if not signals["arm"].mapped else []
+    if signals["arm"].mapped:
+        required.append(signals["arm"].name)
+    capture = read_capture(capture_path, required, optional=optional, kind=cmap.format,
+                           sample_rate=cmap.sample_rate, time_column=cmap.time_column)
+
+    T = 1.0 / config.clock_hz
+    Ts = capture.sample_period
+    bounds = Bounds(T, Ts, cmap.jitter, DEFAULT_CLOCK_PPM if cmap.clock_ppm is None else cmap.clock_ppm)
+    width_s, gap_s = hw.width_cyc * T, hw.gap_cyc * T
+    for what, length in (("pulses.width", width_s), ("pulses.gap", gap_s)):
+        if length < bounds.measurable:
+            raise UserError(
+                f"sample rate {format_si(1 / Ts, 'Hz')} (period {format_si(Ts, 's')}, {capture.sample_period_from}) "
+                f"is too slow for {what} = {format_si(length, 's')}: a pulse or gap is measured only when it "
+                f"lasts two samples or more; allowed: a sample rate of {format_si(2 / length, 'Hz')} or faster")
+
+    notes: list[str] = []
+    lines: dict[str, Trace] = {}
+    strobe_ref = signals["strobe"]
+    strobe = _logical(capture.traces[strobe_ref.name], strobe_ref.inverted, not hw.edge_rising)
+    lines["strobe"] = strobe
+    toggles = strobe.changes
+    if strobe.initial == 1:
+        toggles = toggles[1:]
+        notes.append("the strobe is active at the capture's start; that strobe (cut by the start) is ignored")
+    if toggles.size == 0:
+        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} "
+                        f"({'active high' if hw.edge_rising != strobe_ref.inverted else 'active low'}, "
+                        f"level {strobe.initial} throughout); the model is driven by the capture's strobe, so "
+                        "a capture needs at least one; check the map and the strobe's wiring")
+    convert = _cycle_converter(capture, config.clock_hz, toggles)
+    cyc = convert(toggles)
+    keep = np.ones(cyc.size, dtype=bool)
+    # Two toggles in one clock cycle: a glitch the emulator's synchronizer may or may not see.
+    same = np.flatnonzero(np.diff(cyc) <= 0)
+    glitches = 0
+    for index in same:
+        if keep[index] and keep[index + 1]:
+            keep[index] = keep[index + 1] = False
+            glitches += 1
+    if glitches:
+        notes.append(f"{glitches} strobe glitch(es) shorter than one clock cycle ignored")
+    toggles, cyc = toggles[keep], cyc[keep]
+    if not np.all(np.diff(cyc) > 0):
+        raise UserError(f"{capture.source}: the strobe on {strobe.name!r} toggles faster than the emulator's "
+                        f"clock ({format_si(config.clock_hz, 'Hz')}) can follow; check the config's clock")
+    if toggles.size == 0:
+        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} after removing glitches "
+                        "shorter than one clock cycle")
+    strobe_on_t, strobe_on_c = toggles[0::2], cyc[0::2]
+    active = toggles[1::2] - toggles[0::2][: toggles[1::2].size]
+    near = np.abs(active - hw.min_width_cyc * T) <= T + bounds.length(0)
+    if np.any(near):
+        notes.append(f"{int(near.sum())} strobe(s) last within the sampling bound of the glitch filter's "
+                     f"{hw.min_width_cyc} cycles: the emulator may take or ignore them either way")
+
+    start_cycle = int(convert(capture.start))
+    end_cycle = int(convert(capture.end))
+    arm_ref = signals["arm"]
+    if arm_ref.name in capture.traces:
+        arm = _logical(capture.traces[arm_ref.name], arm_ref.inverted, False)
+        lines["arm"] = arm
+        arm_list: dict[int, bool] = {start_cycle: bool(arm.initial)}
+        for t, level in zip(arm.changes, (arm.initial ^ 1 ^ (np.arange(arm.changes.size) & 1)), strict=True):
+            arm_list[int(convert(t))] = bool(level)
+        arm_changes = tuple(sorted(arm_list.items()))
+        rises = arm.edges(1)
+        arm_time = capture.start if arm.initial else (float(rises[0]) if rises.size else None)
+        if arm_time is None:
+            notes.append(f"the arm line {arm.name!r} never rises: the emulator stays disarmed")
+    else:
+        arm_changes = ((start_cycle, True),)
+        arm_time = capture.start
+        notes.append("no arm line in the capture: the model is armed from the capture's first sample "
+                     "(trigger the analyzer on arming, or map the arm line, for an exact start)")
+
+    init = list(hw.rates)
+    changes: list[RateChange] = []
+    if program is None and program_start is not None:
+        raise UserError(f"program start = {format_si(program_start, 's')}: given without a program; "
+                        "allowed: only with --program")
+    if program is not None and program_start is not None:
+        if not capture.start <= program_start <= capture.end:
+            raise UserError(f"program start = {format_si(program_start, 's')}: allowed: a time within the capture "
+                            f"({format_si(capture.start, 's')} to {format_si(capture.end, 's')})")
+    if program is not None and program.segments is not None:
+        # Tick 0 is the first armed cycle: the cycle after the arm input rises.
+        if program_start is not None:
+            origin = max(1, int(convert(program_start)))
+        elif arm_time is not None:
+            origin = int(convert(arm_time)) + 1
+        else:
+            origin = None
+            notes.append("the program is not applied: the outputs are never armed")
+        if origin is not None:
+            changes = list(program.segments.rate_changes(origin, hw.rates))
+    elif program is not None:
+        step_origin = program_start if program_start is not None else arm_time
+        if step_origin is None:
+            notes.append("the program is not applied: the outputs are never armed")
+        else:
+            for step in program.steps:
+                cycle = int(convert(step_origin + step.at))
+                fixed = config.rate_to_fixed(step.channel, step.rate)
+                if cycle < 1:
+                    init[step.channel] = fixed
+                else:
+                    changes.append(RateChange(cycle, step.channel, fixed))
+    changes.sort(key=lambda c: c.cycle)
+    params = replace(hw, init_rates=tuple(init))
+    margin = 3 + math.ceil((T + 2 * bounds.length(0)) * config.clock_hz)
+    n_cyc = max(end_cycle + margin, int(cyc[-1]) + 1)
+    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(int(c) for c in cyc), rate_changes=tuple(changes),
+                    arm_changes=arm_changes)
+    result = run_model(params, stim)
+
+    latency_cyc = hw.latency_cyc
+    expected = {"width": width_s, "gap": gap_s, "latency": latency_cyc * T}
+    lat_lo, lat_hi = bounds.window(latency_cyc * T)
+    expected["latency_lo"] = latency_cyc * T + lat_lo
+    expected["latency_hi"] = latency_cyc * T + lat_hi
+    spacing = hw.width_cyc + hw.gap_cyc
+    first_strobe = float(strobe_on_t[0])
+    n_strobes = strobe_on_t.size
+    interval_edges = np.concatenate((strobe_on_t, [math.inf]))
+    strobe_counts = np.zeros((n_strobes, hw.n, 2, 2), dtype=np.int64)
+
+    armed = armed_intervals(stim)
+    checks: list[ChannelCheck] = []
+    found: list[Discrepancy] = []
+    predicted_out: dict[str, np.ndarray] = {}
+    widths_all: list[np.ndarray] = []
+    latency_all: list[float] = []
+    bursts: list[tuple[float, float]] = []  # (captured, modelled) time from first to last rise of a burst
+
+    for ch, channel in enumerate(config.channels):
+        edges = sorted((e for e in result.edges if e.channel == ch), key=lambda e: e.rise)
+        rise_c = np.array([e.rise for e in edges], dtype=np.int64)
+        fall_c = np.array([np.nan if e.fall is None else e.fall for e in edges], dtype=np.float64)
+        line_of = np.array([e.line for e in edges], dtype=np.int64)
+        # Each burst's anchor: the strobe edge whose cycle is L before the burst's first rise.
+        starts = np.ones(rise_c.size, dtype=bool)
+        starts[1:] = np.diff(rise_c) != spacing
+        anchor = np.zeros(rise_c.size, dtype=np.int64)
+        burst_anchor = np.searchsorted(strobe_on_c, rise_c - latency_cyc, side="right") - 1
+        current = -1
+        for k in range(rise_c.size):
+            if starts[k]:
+                current = int(burst_anchor[k])
+            anchor[k] = current
+        has = anchor >= 0
+        a_t = np.where(has, strobe_on_t[np.maximum(anchor, 0)], capture.start)
+        a_c = np.where(has, strobe_on_c[np.maximum(anchor, 0)], start_cycle)
+        p_rise = a_t + (rise_c - a_c) * T
+        p_fall = a_t + (fall_c - a_c) * T
+        span = p_rise - a_t
+        slack = bounds.sample_period + 2 * bounds.jitter + bounds.clock_ppm * 1e-6 * span
+        lo, hi = -(T + slack), slack
+
+        # Latency: each burst a strobe started, to the first captured rise on either line.
+        cap_lines = []
+        unknown = 0
+        for line_name in LINE_NAMES:
+            ref = signals[f"{channel.name}_{line_name}"]
+            trace = _logical(capture.traces[ref.name], ref.inverted, hw.active_low)
+            lines[f"{channel.name}_{line_name}"] = trace
+            unknown += trace.unknown
+            cap_lines.append(_pulses(trace))
+        all_rises = np.sort(np.concatenate([c[0] for c in cap_lines]))
+        latencies = []
+        latency_out = 0
+        for k in np.flatnonzero(starts & has):
+            s = int(anchor[k])
+            t_s = strobe_on_t[s]
+            nxt = np.searchsorted(all_rises, t_s, side="left")
+            if nxt < all_rises.size and all_rises[nxt] < interval_edges[s + 1]:
+                delay = float(all_rises[nxt] - t_s)
+                latencies.append(delay)
+                if not expected["latency_lo"] <= delay <= expected["latency_hi"]:
+                    latency_out += 1
+        latency_all.extend(latencies)
+
+        matched = missing = extra = width_errors = gap_errors = unmeasurable = not_compared = 0
+        widths: list[float] = []
+        pred_counts = [0, 0]
+        got_counts = [0, 0]
+        # Per captured pulse (both lines): rise, fall, matched predicted index, width flagged.
+        merged: list[tuple[float, float, int, bool]] = []
+        for ln, line_name in enumerate(LINE_NAMES):
+            rises, falls, cut = cap_lines[ln]
+            not_compared += cut
+            sel = np.flatnonzero(line_of == ln)
+            order = np.argsort(p_rise[sel], kind="stable")
+            sel = sel[order]
+            pairs, miss, ext = _match(p_rise[sel], lo[sel], hi[sel], rises)
+            for i in miss:
+                k = int(sel[i])
+                if p_rise[k] + hi[k] >= capture.end:
+                    not_compared += 1
+                    continue
+                missing += 1
+                found.append(Discrepancy("missing", channel.name, line_name, float(p_rise[k]), float(p_rise[k]),
+                                         None))
+            for j in ext:
+                if rises[j] < first_strobe:
+                    not_compared += 1
+                    continue
+                extra += 1
+                found.append(Discrepancy("extra", channel.name, line_name, float(rises[j]), None, float(rises[j])))
+            pair_of = {j: int(sel[i]) for i, j in pairs}
+            matched += len(pairs)
+            for j in range(rises.size):
+                w_c = falls[j] - rises[j]
+                flagged = False
+                if not math.isnan(w_c):
+                    if w_c < bounds.measurable:
+                        unmeasurable += 1
+                    else:
+                        widths.append(float(w_c))
+                        k = pair_of.get(j)
+                        if k is not None and not math.isnan(p_fall[k]):
+                            w_p = p_fall[k] - p_rise[k]
+                            if abs(w_c - w_p) > bounds.length(w_p):
+                                width_errors += 1
+                                flagged = True
+                                found.append(Discrepancy("width", channel.name, line_name, float(rises[j]),
+                                                         float(w_p), float(w_c)))
+                merged.append((float(rises[j]), float(falls[j]), pair_of.get(j, -1), flagged))
+            # Counts over the compared span: captured from the first strobe, predicted up to the end.
+            in_span = rises >= first_strobe
+            got_counts[ln] = int(in_span.sum())
+            pred_sel = p_rise[sel]
+            pred_counts[ln] = int((pred_sel <= capture.end).sum())
+            strobe_counts[:, ch, ln, 0] = np.diff(np.searchsorted(rises, interval_edges))
+            strobe_counts[:, ch, ln, 1] = np.diff(np.searchsorted(np.sort(pred_sel[pred_sel <= capture.end]),
+                                                                  interval_edges))
+            predicted_out[f"{channel.name}_{line_name}"] = np.stack((p_rise[sel], p_fall[sel]), axis=1) \
+                if sel.size else np.empty((0, 2))
+        widths_all.append(np.asarray(widths))
+
+        # Low times: every pair of consecutive captured pulses; back-to-back ones against the bound.
+        merged.sort()
+        gaps: list[float] = []
+        least_low: float | None = None
+        chain: list[tuple[float, int]] = []  # (captured rise, model rise cycle) of back-to-back pulses
+        for (r0, f0, k0, bad0), (r1, _f1, k1, bad1) in zip(merged, merged[1:], strict=False):
+            back_to_back = k0 >= 0 and k1 >= 0 and rise_c[k1] - rise_c[k0] == spacing
+            if back_to_back:
+                if not chain:
+                    chain.append((r0, int(rise_c[k0])))
+                chain.append((r1, int(rise_c[k1])))
+            elif len(chain) > 1:
+                bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * T))
+                chain = []
+            else:
+                chain = []
+            if math.isnan(f0):
+                continue
+            low = r1 - f0
+            least_low = low if least_low is None else min(least_low, low)
+            if not back_to_back:
+                continue
+            if low < bounds.measurable:
+                unmeasurable += 1
+                continue
+            gaps.append(low)
+            g_p = p_rise[k1] - p_fall[k0]
+            if abs(low - g_p) > bounds.length(g_p) and not (bad0 or bad1):
+                gap_errors += 1
+                found.append(Discrepancy("gap", channel.name, LINE_NAMES[line_of[k1]], r1, float(g_p), low))
+        if len(chain) > 1:
+            bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * T))
+
+        # Running net count, captured minus model, at every strobe: a pulse handed over one
+        # strobe apart from the model shows as +1 then back to 0.
+        per_strobe = (strobe_counts[:, ch, POS, 0] - strobe_counts[:, ch, NEG, 0]
+                      - strobe_counts[:, ch, POS, 1] + strobe_counts[:, ch, NEG, 1])
+        running = np.cumsum(per_strobe)
+        running_max = int(np.abs(running).max()) if running.size else 0
+        flips = int(np.sum(per_strobe[:-1] * per_strobe[1:] == -1)) if per_strobe.size > 1 else 0
+
+        cap_pos = cap_lines[POS][0]
+        cap_neg = cap_lines[NEG][0]
+        net_captured = int(cap_pos.size - cap_neg.size)
+        in_capture = p_rise <= capture.end
+        net_model = int(np.sum(in_capture & (line_of == POS)) - np.sum(in_capture & (line_of == NEG)))
+        upto = min(end_cycle + 1, n_cyc)
+        live = [(a, b) for a, b in armed if a < upto]
+        # What the computer was owed: the rate over the last armed stretch (disarming clears the books).
+        commanded = integral(params, stim, ch, live, upto=min(upto, live[-1][1])) if live else 0
+        dv_program = commanded / (1 << hw.frac_bits) * channel.weight
+        # The model's books are at its last cycle, a few past the capture's end: take back what
+        # those cycles added, so that captured - program = -held when the capture matches the model.
+        books = result.channels[ch]
+        after = np.sum(~in_capture & (line_of == POS)) - np.sum(~in_capture & (line_of == NEG))
+        tail = (integral(params, stim, ch, live, upto=min(n_cyc, live[-1][1])) - commanded) if live else 0
+        held = (books.owed - tail) / (1 << hw.frac_bits) + books.pend_pos - books.pend_neg + float(after)
+        checks.append(ChannelCheck(
+            name=channel.name, unit=channel.unit, weight=channel.weight,
+            predicted=(pred_counts[POS], pred_counts[NEG]), captured=(got_counts[POS], got_counts[NEG]),
+            matched=matched, missing=missing, extra=extra, width_errors=width_errors, gap_errors=gap_errors,
+            unmeasurable=unmeasurable, not_compared=not_compared,
+            widths=Stats.of(widths), gaps=Stats.of(gaps), latency=Stats.of(latencies), latency_out=latency_out,
+            least_low=least_low, net_captured=net_captured, net_model=net_model,
+            dv_captured=net_captured * channel.weight, dv_model=net_model * channel.weight, dv_program=dv_program,
+            held_model=held, running_max=running_max, flips=flips, unknown=unknown,
+        ))
+
+    found.sort(key=lambda d: (d.time, d.channel, d.line, d.kind))
+    clock_ppm = clock_err = None
+    if len(bursts) >= 3:
+        seen, modelled = np.array(bursts).T
+        per_burst = seen / modelled - 1.0
+        clock_ppm = float(seen.sum() / modelled.sum() - 1.0) * 1e6
+        weights = modelled / modelled.sum()
+        clock_err = float(np.sqrt(np.sum(weights ** 2 * (per_burst * 1e6 - clock_ppm) ** 2)))
+        notes.append(f"the emulator's clock against the analyzer's: {clock_ppm:+.1f} ppm, standard error "
+                     f"{clock_err:.1f} ppm, from the spacing of {len(bursts)} bursts (a real difference is a "
+                     "delta-V scale error of the same size)")
+    if any(c.flips for c in checks):
+        notes.append("a pulse handed over one strobe apart from the model (net count +1 at one strobe, -1 at the "
+                     "next) can come from the time base: a capture fixes an asynchronous strobe's clock cycle "
+                     "only to within one cycle (see docs/bench.md); check the running count")
+    mismatched = int(np.any(strobe_counts[..., 0] != strobe_counts[..., 1], axis=(1, 2)).sum())
+    strobe_unknown = lines["strobe"].unknown + (lines["arm"].unknown if "arm" in lines else 0)
+    if strobe_unknown:
+        notes.append(f"{strobe_unknown} x/z value(s) read on the strobe or arm line (held at the last level)")
+    if any(c.not_compared for c in checks):
+        notes.append("pulses not compared: before the capture's first strobe, active at its start, or "
+                     "predicted so close to its end that their window passes it")
+    total_unmeasurable = sum(c.unmeasurable for c in checks)
+    if total_unmeasurable:
+        notes.append(f"{total_unmeasurable} pulse(s) or gap(s) narrower than two samples "
+                     f"({format_si(bounds.measurable, 's')}): flagged unmeasurable, not guessed; sample faster")
+    if found:
+        verdict = "fail"
+    elif (total_unmeasurable or strobe_unknown or any(c.unknown for c in checks)
+          or not any(c.matched for c in checks)):
+        verdict = "inconclusive"
+        if not any(c.matched for c in checks):
+            notes.append("no pulse was compared: nothing to judge")
+    else:
+        verdict = "pass"
+    return BenchReport(
+        capture=capture, config_source=config.source,
+        program_source=program.source if program else "none (the config's initial rates)",
+        signals=signals, bounds=bounds, expected=expected, channels=tuple(checks), discrepancies=tuple(found),
+        strobe_times=strobe_on_t, strobe_counts=strobe_counts, strobe_mismatches=mismatched, verdict=verdict,
+        notes=tuple(notes), model_cycles=n_cyc, clock_ppm=clock_ppm, clock_ppm_error=clock_err,
+        lines=lines, predicted=predicted_out,
+        widths_all=np.concatenate(widths_all) if widths_all else np.empty(0),
+        latency_all=np.asarray(latency_all),
+    )
+
+
+# -- the report folder -------------------------------------------------------------------
+
+
+def write_report(report: BenchReport, out_dir: str | Path) -> list[Path]:
+    """Write the report folder: ``report.txt``, ``report.json``, ``discrepancies.csv``,
+    ``strobes.csv``, ``timeline.png`` and ``histograms.png``.
+
+    Returns
+    -------
+    list of Path
+        The files written.
+
+    Raises
+    ------
+    UserError
+        If ``out_dir`` exists and is not a folder.
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise UserError(f"{out}: exists and is not a folder; give a folder for the report")
+    out.mkdir(parents=True, exist_ok=True)
+    written = []
+
+    path = out / "report.txt"
+    path.write_text(report.summary())
+    written.append(path)
+
+    path = out / "report.json"
+    path.write_text(json.dumps(report.to_json(), indent=2, default=_plain) + "\n")
+    written.append(path)
+
+    path = out / "discrepancies.csv"
+    with path.open("w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["kind", "channel", "line", "time_s", "predicted", "captured"])
+        for d in report.discrepancies:
+            writer.writerow([d.kind, d.channel, d.line, repr(d.time), _cell(d.predicted), _cell(d.captured)])
+    written.append(path)
+
+    path = out / "strobes.csv"
+    names = [ch.name for ch in report.channels]
+    with path.open("w", newline="") as handle:
+        writer = csv.writer(handle)
+        header = ["strobe", "time_s"]
+        for name in names:
+            header += [f"{name}_pos", f"{name}_pos_model", f"{name}_neg", f"{name}_neg_model"]
+        writer.writerow(header)
+        for s, t in enumerate(report.strobe_times):
+            row: list[Any] = [s, repr(float(t))]
+            for ch in range(len(names)):
+                for ln in (POS, NEG):
+                    row += [int(report.strobe_counts[s, ch, ln, 0]), int(report.strobe_counts[s, ch, ln, 1])]
+            writer.writerow(row)
+    written.append(path)
+
+    written.append(_plot_timeline(report, out / "timeline.png"))
+    written.append(_plot_histograms(report, out / "histograms.png"))
+    return written
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    raise TypeError(f"cannot write {type(value).__name__} as JSON")
+
+
+def _cell(value: float | None) -> str:
+    return "" if value is None else repr(float(value))
+
+
+def _focus(report: BenchReport) -> tuple[float, float, str]:
+    """The time window the timeline shows, and why."""
+    e = report.expected
+    pitch = e["width"] + e["gap"]
+    if report.discrepancies:
+        times = np.array([d.time for d in report.discrepancies])
+        which = np.searchsorted(report.strobe_times, times, side="right") - 1
+        counts = np.bincount(which + 1)
+        worst = int(np.argmax(counts)) - 1
+        centre = float(times[which == worst][0])
+        title = f"around the worst discrepancy ({int(counts.max())} in one strobe interval)"
+    else:
+        totals = report.strobe_counts[..., 0].sum(axis=(1, 2))
+        worst = int(np.argmax(totals)) if totals.size else 0
+        t_s = float(report.strobe_times[worst])
+        busiest = int(report.strobe_counts[worst, :, :, 0].max()) if totals.size else 0
+        lo = t_s - 2 * pitch
+        hi = t_s + e["latency"] + (min(busiest, 20) * 2 + 2) * pitch
+        why = "the busiest strobe interval (no discrepancy)"
+        return max(lo, report.capture.start), min(hi, report.capture.end), why
+    half = max(12 * pitch, 2 * e["latency"])
+    lo, hi = centre - half, centre + half
+    if 0 <= worst < report.strobe_times.size and report.strobe_times[worst] >= centre - 3 * half:
+        lo = min(lo, float(report.strobe_times[worst]) - 2 * pitch)
+    return max(lo, report.capture.start), min(hi, report.capture.end), title
+
+
+def _steps(trace: Trace, lo: float, hi: float) -> tuple[np.ndarray, np.ndarray]:
+    inside = trace.changes[(trace.changes > lo) & (trace.changes < hi)]
+    level0 = trace.level_at(lo)
+    t = np.concatenate(([lo], np.repeat(inside, 2), [hi]))
+    levels = level0 ^ (np.arange(inside.size + 1) & 1)
+    return t, np.repeat(levels, 2)
+
+
+def _plot_timeline(report: BenchReport, path: Path) -> Path:
+    from matplotlib.figure import Figure
+
+    lo, hi, why = _focus(report)
+    rows = list(report.lines)
+    fig = Figure(figsize=(11, 1.2 + 0.55 * len(rows)))
+    ax = fig.add_subplot()
+    scale = 1e6
+    for index, role in enumerate(rows):
+        base = (len(rows) - 1 - index) * 1.5
+        t, levels = _steps(report.lines[role], lo, hi)
+        ax.plot(t * scale, base + levels * 1.0, color="black", linewidth=1.0,
+                label="captured" if index == 0 else None)
+        spans = report.predicted.get(role)
+        if spans is not None and spans.size:
+            for rise, fall in spans:
+                end = hi if math.isnan(fall) else fall
+                if end < lo or rise > hi:
+                    continue
+                ax.fill_between([max(rise, lo) * scale, min(end, hi) * scale], base, base + 1.0,
+                                color="tab:blue", alpha=0.25, linewidth=0,
+                                label="model" if not ax.get_legend_handles_labels()[1].count("model") else None)
+    for d in report.discrepancies:
+        if lo <= d.time <= hi:
+            role = f"{d.channel}_{d.line}"
+            if role in rows:
+                base = (len(rows) - 1 - rows.index(role)) * 1.5
+                ax.plot([d.time * scale], [base + 1.2], marker="v", color="tab:red", markersize=8,
+                        label="discrepancy" if not ax.get_legend_handles_labels()[1].count("discrepancy") else None)
+                ax.annotate(d.kind, (d.time * scale, base + 1.25), color="tab:red", fontsize=7)
+    ax.set_yticks([(len(rows) - 1 - i) * 1.5 + 0.5 for i in range(len(rows))], rows)
+    ax.set_xlim(lo * scale, hi * scale)
+    ax.set_xlabel("capture time (us)")
+    ax.set_title(f"{report.verdict.upper()}: {why}", fontsize=10)
+    ax.legend(loc="upper right", fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    return path
+
+
+def _plot_histograms(report: BenchReport, path: Path) -> Path:
+    from matplotlib.figure import Figure
+
+    e = report.expected
+    fig = Figure(figsize=(11, 4))
+    scale = 1e9
+    panels = [
+        ("pulse width", report.widths_all, e["width"], (e["width"] - report.bounds.length(e["width"]),
+                                                          e["width"] + report.bounds.length(e["width"]))),
+        ("strobe to first edge", report.latency_all, e["latency"], (e["latency_lo"], e["latency_hi"])),
+    ]
+    for index, (title, values, want, (b_lo, b_hi)) in enumerate(panels):
+        ax = fig.add_subplot(1, 2, index + 1)
+        if values.size:
+            # The bins span the bound too, so a column of identical values still shows.
+            span = (min(b_lo, float(values.min())) * scale, max(b_hi, float(values.max())) * scale)
+            ax.hist(values * scale, bins=min(60, max(10, int(np.sqrt(values.size)))), range=span, color="tab:gray",
+                    label="captured")
+        else:
+            ax.text(0.5, 0.5, "none measured", transform=ax.transAxes, ha="center")
+        ax.axvline(want * scale, color="tab:blue", label="configured")
+        ax.axvspan(b_lo * scale, b_hi * scale, color="tab:blue", alpha=0.12, label="sampling bound")
+        ax.set_title(f"{title} (n={values.size})", fontsize=10)
+        ax.set_xlabel("ns")
+        ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    return path
