@@ -51,7 +51,7 @@ import io
 import json
 import math
 import tomllib
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -60,10 +60,11 @@ import numpy as np
 
 from dvgate.config import Config
 from dvgate.errors import UserError
+from dvgate.params import HardwareParams
 from dvgate.sim.capture import Capture, CaptureMap, SignalRef, Trace, read_capture
 from dvgate.sim.model import armed_intervals, run_model
 from dvgate.sim.stimulus import integral
-from dvgate.sim.trace import LINE_NAMES, NEG, POS, RateChange, Stimulus
+from dvgate.sim.trace import LINE_NAMES, NEG, POS, RateChange, RunResult, Stimulus
 from dvgate.units import QuantityError, format_si, parse_quantity
 
 if TYPE_CHECKING:
@@ -233,9 +234,9 @@ class Bounds:
     jitter: float
     clock_ppm: float
 
-    def window(self, span: float) -> tuple[float, float]:
-        """Allowed ``captured - predicted`` for an edge ``span`` seconds after its strobe."""
-        slack = self.sample_period + 2 * self.jitter + self.clock_ppm * 1e-6 * abs(span)
+    def window(self, span: Any) -> tuple[Any, Any]:
+        """Allowed ``captured - predicted`` for an edge ``span`` seconds after its strobe (float or array)."""
+        slack = self.sample_period + 2 * self.jitter + self.clock_ppm * 1e-6 * np.abs(span)
         return -(self.clock_period + slack), slack
 
     def length(self, length: float) -> float:
@@ -585,7 +586,7 @@ def _match(pred: np.ndarray, lo: np.ndarray, hi: np.ndarray,
     return pairs, missing, extra
 
 
-def _cycle_converter(capture: Capture, clock_hz: float, strobe_times: np.ndarray):
+def _cycle_converter(capture: Capture, clock_hz: float, strobe_times: np.ndarray) -> Callable[[Any], np.ndarray]:
     """``c(t)`` of the matching rule: capture seconds to emulator cycles."""
     if strobe_times.size:
         x = (strobe_times - capture.start) * clock_hz
@@ -599,6 +600,357 @@ def _cycle_converter(capture: Capture, clock_hz: float, strobe_times: np.ndarray
         return np.rint(x).astype(np.int64) + 1
 
     return convert
+
+
+@dataclass
+class _Drive:
+    """The model run on the capture's own strobe, arm line and program.
+
+    Attributes
+    ----------
+    convert : callable
+        Capture seconds to cycles (the matching rule's ``c(t)``).
+    strobe_t, strobe_c : ndarray
+        Capture times and cycles of the strobe pin's active edges.
+    start_cycle, end_cycle : int
+        Cycles of the capture's first and last sample.
+    """
+
+    convert: Callable[[Any], np.ndarray]
+    strobe_t: np.ndarray
+    strobe_c: np.ndarray
+    start_cycle: int
+    end_cycle: int
+    params: HardwareParams
+    stim: Stimulus
+    result: RunResult
+
+
+def _strobe_toggles(capture: Capture, config: Config, ref: SignalRef, bounds: Bounds, notes: list[str],
+                    lines: dict[str, Trace]) -> tuple[np.ndarray, Callable[[Any], np.ndarray], np.ndarray]:
+    """The strobe pin's toggles from inactive (times and cycles) and the time base they fix."""
+    hw = config.hw
+    strobe = _logical(capture.traces[ref.name], ref.inverted, not hw.edge_rising)
+    lines["strobe"] = strobe
+    toggles = strobe.changes
+    if strobe.initial == 1:
+        toggles = toggles[1:]
+        notes.append("the strobe is active at the capture's start; that strobe (cut by the start) is ignored")
+    if toggles.size == 0:
+        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} "
+                        f"({'active high' if hw.edge_rising != ref.inverted else 'active low'}, "
+                        f"level {strobe.initial} throughout); the model is driven by the capture's strobe, so "
+                        "a capture needs at least one; check the map and the strobe's wiring")
+    convert = _cycle_converter(capture, config.clock_hz, toggles)
+    cyc = convert(toggles)
+    keep = np.ones(cyc.size, dtype=bool)
+    # Two toggles in one clock cycle: a glitch the emulator's synchronizer may or may not see.
+    glitches = 0
+    for index in np.flatnonzero(np.diff(cyc) <= 0):
+        if keep[index] and keep[index + 1]:
+            keep[index] = keep[index + 1] = False
+            glitches += 1
+    if glitches:
+        notes.append(f"{glitches} strobe glitch(es) shorter than one clock cycle ignored")
+    toggles, cyc = toggles[keep], cyc[keep]
+    if not np.all(np.diff(cyc) > 0):
+        raise UserError(f"{capture.source}: the strobe on {strobe.name!r} toggles faster than the emulator's "
+                        f"clock ({format_si(config.clock_hz, 'Hz')}) can follow; check the config's clock")
+    if toggles.size == 0:
+        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} after removing glitches "
+                        "shorter than one clock cycle")
+    period = 1.0 / config.clock_hz
+    active = toggles[1::2] - toggles[0::2][: toggles[1::2].size]
+    near = np.abs(active - hw.min_width_cyc * period) <= period + bounds.length(0)
+    if np.any(near):
+        notes.append(f"{int(near.sum())} strobe(s) last within the sampling bound of the glitch filter's "
+                     f"{hw.min_width_cyc} cycles: the emulator may take or ignore them either way")
+    return toggles, convert, cyc
+
+
+def _drive_model(capture: Capture, config: Config, signals: dict[str, SignalRef], bounds: Bounds,
+                 program: RateProgram | None, program_start: float | None, notes: list[str],
+                 lines: dict[str, Trace]) -> _Drive:
+    """Convert the strobe, arm line and program to a stimulus and run the reference model."""
+    hw = config.hw
+    toggles, convert, cyc = _strobe_toggles(capture, config, signals["strobe"], bounds, notes, lines)
+    start_cycle = int(convert(capture.start))
+    end_cycle = int(convert(capture.end))
+
+    arm_ref = signals["arm"]
+    arm_time: float | None
+    if arm_ref.name in capture.traces:
+        arm = _logical(capture.traces[arm_ref.name], arm_ref.inverted, False)
+        lines["arm"] = arm
+        arm_list: dict[int, bool] = {start_cycle: bool(arm.initial)}
+        for t, level in zip(arm.changes, (arm.initial ^ 1 ^ (np.arange(arm.changes.size) & 1)), strict=True):
+            arm_list[int(convert(t))] = bool(level)
+        arm_changes = tuple(sorted(arm_list.items()))
+        rises = arm.edges(1)
+        arm_time = capture.start if arm.initial else (float(rises[0]) if rises.size else None)
+        if arm_time is None:
+            notes.append(f"the arm line {arm.name!r} never rises: the emulator stays disarmed")
+    else:
+        arm_changes = ((start_cycle, True),)
+        arm_time = capture.start
+        notes.append("no arm line in the capture: the model is armed from the capture's first sample "
+                     "(trigger the analyzer on arming, or map the arm line, for an exact start)")
+
+    if program is None and program_start is not None:
+        raise UserError(f"program start = {format_si(program_start, 's')}: given without a program; "
+                        "allowed: only with --program")
+    if program_start is not None and not capture.start <= program_start <= capture.end:
+        raise UserError(f"program start = {format_si(program_start, 's')}: allowed: a time within the capture "
+                        f"({format_si(capture.start, 's')} to {format_si(capture.end, 's')})")
+    init = list(hw.rates)
+    changes: list[RateChange] = []
+    origin_time = program_start if program_start is not None else arm_time
+    if program is not None and origin_time is None:
+        notes.append("the program is not applied: the outputs are never armed")
+    elif program is not None and program.segments is not None:
+        # Tick 0 is the first armed cycle: the cycle after the arm input rises.
+        origin = int(convert(origin_time)) + (0 if program_start is not None else 1)
+        changes = list(program.segments.rate_changes(max(1, origin), hw.rates))
+    elif program is not None:
+        for step in program.steps:
+            cycle = int(convert(origin_time + step.at))
+            fixed = config.rate_to_fixed(step.channel, step.rate)
+            if cycle < 1:
+                init[step.channel] = fixed
+            else:
+                changes.append(RateChange(cycle, step.channel, fixed))
+    changes.sort(key=lambda c: c.cycle)
+
+    params = replace(hw, init_rates=tuple(init))
+    # Run a little past the capture's end, so a pulse captured at the end has its prediction.
+    margin = 3 + math.ceil((1.0 / config.clock_hz + 2 * bounds.length(0)) * config.clock_hz)
+    n_cyc = max(end_cycle + margin, int(cyc[-1]) + 1)
+    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(int(c) for c in cyc), rate_changes=tuple(changes),
+                    arm_changes=arm_changes)
+    return _Drive(convert, toggles[0::2], cyc[0::2], start_cycle, end_cycle, params, stim,
+                  run_model(params, stim))
+
+
+@dataclass
+class _Prediction:
+    """One channel's predicted pulses, placed in capture time (rule 2) with their windows."""
+
+    rise_c: np.ndarray   # rise cycles, sorted
+    line: np.ndarray     # POS or NEG
+    rise: np.ndarray     # predicted capture times
+    fall: np.ndarray     # NaN when still active at the model's end
+    starts: np.ndarray   # True where a burst starts
+    anchor: np.ndarray   # index of the strobe whose edge anchors the pulse, -1 for none
+    lo: np.ndarray       # match window, captured - predicted
+    hi: np.ndarray
+
+
+def _predict(drive: _Drive, ch: int, bounds: Bounds, start: float) -> _Prediction:
+    hw = drive.params
+    edges = sorted((e for e in drive.result.edges if e.channel == ch), key=lambda e: e.rise)
+    rise_c = np.array([e.rise for e in edges], dtype=np.int64)
+    fall_c = np.array([np.nan if e.fall is None else e.fall for e in edges], dtype=np.float64)
+    line = np.array([e.line for e in edges], dtype=np.int64)
+    # A burst's anchor is the strobe edge L cycles before its first rise; its pulses share it.
+    starts = np.ones(rise_c.size, dtype=bool)
+    starts[1:] = np.diff(rise_c) != hw.pulse_period_cyc
+    burst_anchor = np.searchsorted(drive.strobe_c, rise_c - hw.latency_cyc, side="right") - 1
+    anchor = np.maximum.accumulate(np.where(starts, np.arange(rise_c.size), 0)) if rise_c.size else rise_c
+    anchor = burst_anchor[anchor] if rise_c.size else anchor
+    has = anchor >= 0
+    period = 1.0 / hw.clock_hz
+    a_t = np.where(has, drive.strobe_t[np.maximum(anchor, 0)], start)
+    a_c = np.where(has, drive.strobe_c[np.maximum(anchor, 0)], drive.start_cycle)
+    rise = a_t + (rise_c - a_c) * period
+    fall = a_t + (fall_c - a_c) * period
+    lo, hi = bounds.window(rise - a_t)
+    return _Prediction(rise_c, line, rise, fall, starts, anchor, lo, hi)
+
+
+@dataclass
+class _ChannelOutcome:
+    check: ChannelCheck
+    found: list[Discrepancy]
+    predicted: dict[str, np.ndarray]
+    widths: list[float]
+    latencies: list[float]
+    bursts: list[tuple[float, float]]   # (captured, modelled) time from first to last rise of a burst
+    counts: np.ndarray                  # (strobes, 2 lines, captured/predicted)
+
+
+def _compare_channel(ch: int, config: Config, capture: Capture, drive: _Drive, bounds: Bounds,
+                     expected: dict[str, float], signals: dict[str, SignalRef],
+                     lines: dict[str, Trace]) -> _ChannelOutcome:
+    """Match one channel's captured pulses with the model's and measure them (rules 3 to 7)."""
+    hw = drive.params
+    channel = config.channels[ch]
+    period = 1.0 / config.clock_hz
+    pred = _predict(drive, ch, bounds, capture.start)
+    first_strobe = float(drive.strobe_t[0])
+    interval_edges = np.concatenate((drive.strobe_t, [math.inf]))
+    counts = np.zeros((drive.strobe_t.size, 2, 2), dtype=np.int64)
+    found: list[Discrepancy] = []
+    predicted: dict[str, np.ndarray] = {}
+
+    captured = []
+    unknown = 0
+    for line_name in LINE_NAMES:
+        ref = signals[f"{channel.name}_{line_name}"]
+        trace = _logical(capture.traces[ref.name], ref.inverted, hw.active_low)
+        lines[f"{channel.name}_{line_name}"] = trace
+        unknown += trace.unknown
+        captured.append(_pulses(trace))
+
+    # Latency: from each strobe that started a burst to the first captured rise on either line.
+    all_rises = np.sort(np.concatenate([c[0] for c in captured]))
+    latencies: list[float] = []
+    latency_out = 0
+    for k in np.flatnonzero(pred.starts & (pred.anchor >= 0)):
+        s = int(pred.anchor[k])
+        t_s = drive.strobe_t[s]
+        nxt = np.searchsorted(all_rises, t_s, side="left")
+        if nxt < all_rises.size and all_rises[nxt] < interval_edges[s + 1]:
+            delay = float(all_rises[nxt] - t_s)
+            latencies.append(delay)
+            latency_out += not expected["latency_lo"] <= delay <= expected["latency_hi"]
+
+    matched = missing = extra = width_errors = gap_errors = unmeasurable = not_compared = 0
+    widths: list[float] = []
+    pred_counts = [0, 0]
+    got_counts = [0, 0]
+    # Every captured pulse of both lines: rise, fall, matched prediction (-1: none), width flagged.
+    merged: list[tuple[float, float, int, bool]] = []
+    for ln, line_name in enumerate(LINE_NAMES):
+        rises, falls, cut = captured[ln]
+        not_compared += cut
+        sel = np.flatnonzero(pred.line == ln)
+        sel = sel[np.argsort(pred.rise[sel], kind="stable")]
+        pairs, miss, ext = _match(pred.rise[sel], pred.lo[sel], pred.hi[sel], rises)
+        for i in miss:
+            k = int(sel[i])
+            if pred.rise[k] + pred.hi[k] >= capture.end:
+                not_compared += 1
+                continue
+            missing += 1
+            found.append(Discrepancy("missing", channel.name, line_name, float(pred.rise[k]),
+                                     float(pred.rise[k]), None))
+        for j in ext:
+            if rises[j] < first_strobe:
+                not_compared += 1
+                continue
+            extra += 1
+            found.append(Discrepancy("extra", channel.name, line_name, float(rises[j]), None, float(rises[j])))
+        pair_of = {j: int(sel[i]) for i, j in pairs}
+        matched += len(pairs)
+        for j in range(rises.size):
+            w_c = falls[j] - rises[j]
+            flagged = False
+            if not math.isnan(w_c):
+                if w_c < bounds.measurable:
+                    unmeasurable += 1
+                else:
+                    widths.append(float(w_c))
+                    k = pair_of.get(j)
+                    if k is not None and not math.isnan(pred.fall[k]):
+                        w_p = pred.fall[k] - pred.rise[k]
+                        if abs(w_c - w_p) > bounds.length(w_p):
+                            width_errors += 1
+                            flagged = True
+                            found.append(Discrepancy("width", channel.name, line_name, float(rises[j]),
+                                                     float(w_p), float(w_c)))
+            merged.append((float(rises[j]), float(falls[j]), pair_of.get(j, -1), flagged))
+        # Counts over the compared span: captured from the first strobe, predicted up to the end.
+        in_time = np.sort(pred.rise[sel][pred.rise[sel] <= capture.end])
+        got_counts[ln] = int(np.sum(rises >= first_strobe))
+        pred_counts[ln] = int(in_time.size)
+        counts[:, ln, 0] = np.diff(np.searchsorted(rises, interval_edges))
+        counts[:, ln, 1] = np.diff(np.searchsorted(in_time, interval_edges))
+        predicted[f"{channel.name}_{line_name}"] = np.stack((pred.rise[sel], pred.fall[sel]), axis=1)
+
+    # Low times: every pair of consecutive captured pulses; back-to-back ones against the bound.
+    merged.sort()
+    gaps: list[float] = []
+    least_low: float | None = None
+    bursts: list[tuple[float, float]] = []
+    chain: list[tuple[float, int]] = []  # (captured rise, model rise cycle) of back-to-back pulses
+    for (r0, f0, k0, bad0), (r1, _f1, k1, bad1) in zip(merged, merged[1:], strict=False):
+        back_to_back = k0 >= 0 and k1 >= 0 and pred.rise_c[k1] - pred.rise_c[k0] == hw.pulse_period_cyc
+        if back_to_back:
+            chain = chain or [(r0, int(pred.rise_c[k0]))]
+            chain.append((r1, int(pred.rise_c[k1])))
+        else:
+            if len(chain) > 1:
+                bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * period))
+            chain = []
+        if math.isnan(f0):
+            continue
+        low = r1 - f0
+        least_low = low if least_low is None else min(least_low, low)
+        if not back_to_back:
+            continue
+        if low < bounds.measurable:
+            unmeasurable += 1
+            continue
+        gaps.append(low)
+        g_p = pred.rise[k1] - pred.fall[k0]
+        if abs(low - g_p) > bounds.length(g_p) and not (bad0 or bad1):
+            gap_errors += 1
+            found.append(Discrepancy("gap", channel.name, LINE_NAMES[pred.line[k1]], r1, float(g_p), low))
+    if len(chain) > 1:
+        bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * period))
+
+    # Running net count, captured minus model, at every strobe: a pulse handed over one
+    # strobe apart from the model shows as +1 then back to 0.
+    per_strobe = counts[:, POS, 0] - counts[:, NEG, 0] - counts[:, POS, 1] + counts[:, NEG, 1]
+    running_max = int(np.abs(np.cumsum(per_strobe)).max()) if per_strobe.size else 0
+    flips = int(np.sum(per_strobe[:-1] * per_strobe[1:] == -1)) if per_strobe.size > 1 else 0
+
+    net_captured = int(captured[POS][0].size - captured[NEG][0].size)
+    in_capture = pred.rise <= capture.end
+    net_model = int(np.sum(in_capture & (pred.line == POS)) - np.sum(in_capture & (pred.line == NEG)))
+    dv_program, held = _books(drive, ch, pred, in_capture)
+    check = ChannelCheck(
+        name=channel.name, unit=channel.unit, weight=channel.weight,
+        predicted=(pred_counts[POS], pred_counts[NEG]), captured=(got_counts[POS], got_counts[NEG]),
+        matched=matched, missing=missing, extra=extra, width_errors=width_errors, gap_errors=gap_errors,
+        unmeasurable=unmeasurable, not_compared=not_compared,
+        widths=Stats.of(widths), gaps=Stats.of(gaps), latency=Stats.of(latencies), latency_out=latency_out,
+        least_low=least_low, net_captured=net_captured, net_model=net_model,
+        dv_captured=net_captured * channel.weight, dv_model=net_model * channel.weight,
+        dv_program=dv_program * channel.weight, held_model=held, running_max=running_max, flips=flips,
+        unknown=unknown,
+    )
+    return _ChannelOutcome(check, found, predicted, widths, latencies, bursts, counts)
+
+
+def _books(drive: _Drive, ch: int, pred: _Prediction, in_capture: np.ndarray) -> tuple[float, float]:
+    """Pulses the program commanded up to the capture's end, and what the model still holds then."""
+    params, stim = drive.params, drive.stim
+    one = 1 << params.frac_bits
+    upto = min(drive.end_cycle + 1, stim.cycles)
+    live = [(a, b) for a, b in armed_intervals(stim) if a < upto]
+    if not live:
+        return 0.0, 0.0
+    # What the computer is owed: the rate over the last armed stretch (disarming clears the books).
+    commanded = integral(params, stim, ch, live, upto=min(upto, live[-1][1]))
+    # The model's books are at its last cycle, a few past the capture's end: take back what those
+    # cycles added, so that captured - program = -held when the capture matches the model.
+    books = drive.result.channels[ch]
+    tail = integral(params, stim, ch, live, upto=min(stim.cycles, live[-1][1])) - commanded
+    after = np.sum(~in_capture & (pred.line == POS)) - np.sum(~in_capture & (pred.line == NEG))
+    held = (books.owed - tail) / one + books.pend_pos - books.pend_neg + float(after)
+    return commanded / one, held
+
+
+def _clock_offset(bursts: list[tuple[float, float]]) -> tuple[float | None, float | None]:
+    """The emulator's clock against the analyzer's (ppm) and its standard error, from burst lengths."""
+    if len(bursts) < 3:
+        return None, None
+    seen, modelled = np.array(bursts).T
+    ppm = float(seen.sum() / modelled.sum() - 1.0) * 1e6
+    weights = modelled / modelled.sum()
+    error = float(np.sqrt(np.sum(weights ** 2 * ((seen / modelled - 1.0) * 1e6 - ppm) ** 2)))
+    return ppm, error
 
 
 def check_capture(capture_path: str | Path, config: Config, *, program: RateProgram | None = None,
@@ -640,317 +992,35 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
     capture = read_capture(capture_path, required, optional=optional, kind=cmap.format,
                            sample_rate=cmap.sample_rate, time_column=cmap.time_column)
 
-    T = 1.0 / config.clock_hz
-    Ts = capture.sample_period
-    bounds = Bounds(T, Ts, cmap.jitter, DEFAULT_CLOCK_PPM if cmap.clock_ppm is None else cmap.clock_ppm)
-    width_s, gap_s = hw.width_cyc * T, hw.gap_cyc * T
+    period = 1.0 / config.clock_hz
+    ts = capture.sample_period
+    bounds = Bounds(period, ts, cmap.jitter, DEFAULT_CLOCK_PPM if cmap.clock_ppm is None else cmap.clock_ppm)
+    width_s, gap_s = hw.width_cyc * period, hw.gap_cyc * period
     for what, length in (("pulses.width", width_s), ("pulses.gap", gap_s)):
         if length < bounds.measurable:
             raise UserError(
-                f"sample rate {format_si(1 / Ts, 'Hz')} (period {format_si(Ts, 's')}, {capture.sample_period_from}) "
+                f"sample rate {format_si(1 / ts, 'Hz')} (period {format_si(ts, 's')}, {capture.sample_period_from}) "
                 f"is too slow for {what} = {format_si(length, 's')}: a pulse or gap is measured only when it "
                 f"lasts two samples or more; allowed: a sample rate of {format_si(2 / length, 'Hz')} or faster")
 
     notes: list[str] = []
     lines: dict[str, Trace] = {}
-    strobe_ref = signals["strobe"]
-    strobe = _logical(capture.traces[strobe_ref.name], strobe_ref.inverted, not hw.edge_rising)
-    lines["strobe"] = strobe
-    toggles = strobe.changes
-    if strobe.initial == 1:
-        toggles = toggles[1:]
-        notes.append("the strobe is active at the capture's start; that strobe (cut by the start) is ignored")
-    if toggles.size == 0:
-        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} "
-                        f"({'active high' if hw.edge_rising != strobe_ref.inverted else 'active low'}, "
-                        f"level {strobe.initial} throughout); the model is driven by the capture's strobe, so "
-                        "a capture needs at least one; check the map and the strobe's wiring")
-    convert = _cycle_converter(capture, config.clock_hz, toggles)
-    cyc = convert(toggles)
-    keep = np.ones(cyc.size, dtype=bool)
-    # Two toggles in one clock cycle: a glitch the emulator's synchronizer may or may not see.
-    same = np.flatnonzero(np.diff(cyc) <= 0)
-    glitches = 0
-    for index in same:
-        if keep[index] and keep[index + 1]:
-            keep[index] = keep[index + 1] = False
-            glitches += 1
-    if glitches:
-        notes.append(f"{glitches} strobe glitch(es) shorter than one clock cycle ignored")
-    toggles, cyc = toggles[keep], cyc[keep]
-    if not np.all(np.diff(cyc) > 0):
-        raise UserError(f"{capture.source}: the strobe on {strobe.name!r} toggles faster than the emulator's "
-                        f"clock ({format_si(config.clock_hz, 'Hz')}) can follow; check the config's clock")
-    if toggles.size == 0:
-        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} after removing glitches "
-                        "shorter than one clock cycle")
-    strobe_on_t, strobe_on_c = toggles[0::2], cyc[0::2]
-    active = toggles[1::2] - toggles[0::2][: toggles[1::2].size]
-    near = np.abs(active - hw.min_width_cyc * T) <= T + bounds.length(0)
-    if np.any(near):
-        notes.append(f"{int(near.sum())} strobe(s) last within the sampling bound of the glitch filter's "
-                     f"{hw.min_width_cyc} cycles: the emulator may take or ignore them either way")
+    drive = _drive_model(capture, config, signals, bounds, program, program_start, notes, lines)
+    latency = hw.latency_cyc * period
+    lat_lo, lat_hi = bounds.window(latency)
+    expected = {"width": width_s, "gap": gap_s, "latency": latency,
+                "latency_lo": latency + lat_lo, "latency_hi": latency + lat_hi}
 
-    start_cycle = int(convert(capture.start))
-    end_cycle = int(convert(capture.end))
-    arm_ref = signals["arm"]
-    if arm_ref.name in capture.traces:
-        arm = _logical(capture.traces[arm_ref.name], arm_ref.inverted, False)
-        lines["arm"] = arm
-        arm_list: dict[int, bool] = {start_cycle: bool(arm.initial)}
-        for t, level in zip(arm.changes, (arm.initial ^ 1 ^ (np.arange(arm.changes.size) & 1)), strict=True):
-            arm_list[int(convert(t))] = bool(level)
-        arm_changes = tuple(sorted(arm_list.items()))
-        rises = arm.edges(1)
-        arm_time = capture.start if arm.initial else (float(rises[0]) if rises.size else None)
-        if arm_time is None:
-            notes.append(f"the arm line {arm.name!r} never rises: the emulator stays disarmed")
-    else:
-        arm_changes = ((start_cycle, True),)
-        arm_time = capture.start
-        notes.append("no arm line in the capture: the model is armed from the capture's first sample "
-                     "(trigger the analyzer on arming, or map the arm line, for an exact start)")
+    outcomes = [_compare_channel(ch, config, capture, drive, bounds, expected, signals, lines)
+                for ch in range(hw.n)]
+    checks = [o.check for o in outcomes]
+    found = sorted((d for o in outcomes for d in o.found), key=lambda d: (d.time, d.channel, d.line, d.kind))
+    strobe_counts = np.stack([o.counts for o in outcomes], axis=1)
+    mismatched = int(np.any(strobe_counts[..., 0] != strobe_counts[..., 1], axis=(1, 2)).sum())
 
-    init = list(hw.rates)
-    changes: list[RateChange] = []
-    if program is None and program_start is not None:
-        raise UserError(f"program start = {format_si(program_start, 's')}: given without a program; "
-                        "allowed: only with --program")
-    if program is not None and program_start is not None:
-        if not capture.start <= program_start <= capture.end:
-            raise UserError(f"program start = {format_si(program_start, 's')}: allowed: a time within the capture "
-                            f"({format_si(capture.start, 's')} to {format_si(capture.end, 's')})")
-    if program is not None and program.segments is not None:
-        # Tick 0 is the first armed cycle: the cycle after the arm input rises.
-        if program_start is not None:
-            origin = max(1, int(convert(program_start)))
-        elif arm_time is not None:
-            origin = int(convert(arm_time)) + 1
-        else:
-            origin = None
-            notes.append("the program is not applied: the outputs are never armed")
-        if origin is not None:
-            changes = list(program.segments.rate_changes(origin, hw.rates))
-    elif program is not None:
-        step_origin = program_start if program_start is not None else arm_time
-        if step_origin is None:
-            notes.append("the program is not applied: the outputs are never armed")
-        else:
-            for step in program.steps:
-                cycle = int(convert(step_origin + step.at))
-                fixed = config.rate_to_fixed(step.channel, step.rate)
-                if cycle < 1:
-                    init[step.channel] = fixed
-                else:
-                    changes.append(RateChange(cycle, step.channel, fixed))
-    changes.sort(key=lambda c: c.cycle)
-    params = replace(hw, init_rates=tuple(init))
-    margin = 3 + math.ceil((T + 2 * bounds.length(0)) * config.clock_hz)
-    n_cyc = max(end_cycle + margin, int(cyc[-1]) + 1)
-    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(int(c) for c in cyc), rate_changes=tuple(changes),
-                    arm_changes=arm_changes)
-    result = run_model(params, stim)
-
-    latency_cyc = hw.latency_cyc
-    expected = {"width": width_s, "gap": gap_s, "latency": latency_cyc * T}
-    lat_lo, lat_hi = bounds.window(latency_cyc * T)
-    expected["latency_lo"] = latency_cyc * T + lat_lo
-    expected["latency_hi"] = latency_cyc * T + lat_hi
-    spacing = hw.width_cyc + hw.gap_cyc
-    first_strobe = float(strobe_on_t[0])
-    n_strobes = strobe_on_t.size
-    interval_edges = np.concatenate((strobe_on_t, [math.inf]))
-    strobe_counts = np.zeros((n_strobes, hw.n, 2, 2), dtype=np.int64)
-
-    armed = armed_intervals(stim)
-    checks: list[ChannelCheck] = []
-    found: list[Discrepancy] = []
-    predicted_out: dict[str, np.ndarray] = {}
-    widths_all: list[np.ndarray] = []
-    latency_all: list[float] = []
-    bursts: list[tuple[float, float]] = []  # (captured, modelled) time from first to last rise of a burst
-
-    for ch, channel in enumerate(config.channels):
-        edges = sorted((e for e in result.edges if e.channel == ch), key=lambda e: e.rise)
-        rise_c = np.array([e.rise for e in edges], dtype=np.int64)
-        fall_c = np.array([np.nan if e.fall is None else e.fall for e in edges], dtype=np.float64)
-        line_of = np.array([e.line for e in edges], dtype=np.int64)
-        # Each burst's anchor: the strobe edge whose cycle is L before the burst's first rise.
-        starts = np.ones(rise_c.size, dtype=bool)
-        starts[1:] = np.diff(rise_c) != spacing
-        anchor = np.zeros(rise_c.size, dtype=np.int64)
-        burst_anchor = np.searchsorted(strobe_on_c, rise_c - latency_cyc, side="right") - 1
-        current = -1
-        for k in range(rise_c.size):
-            if starts[k]:
-                current = int(burst_anchor[k])
-            anchor[k] = current
-        has = anchor >= 0
-        a_t = np.where(has, strobe_on_t[np.maximum(anchor, 0)], capture.start)
-        a_c = np.where(has, strobe_on_c[np.maximum(anchor, 0)], start_cycle)
-        p_rise = a_t + (rise_c - a_c) * T
-        p_fall = a_t + (fall_c - a_c) * T
-        span = p_rise - a_t
-        slack = bounds.sample_period + 2 * bounds.jitter + bounds.clock_ppm * 1e-6 * span
-        lo, hi = -(T + slack), slack
-
-        # Latency: each burst a strobe started, to the first captured rise on either line.
-        cap_lines = []
-        unknown = 0
-        for line_name in LINE_NAMES:
-            ref = signals[f"{channel.name}_{line_name}"]
-            trace = _logical(capture.traces[ref.name], ref.inverted, hw.active_low)
-            lines[f"{channel.name}_{line_name}"] = trace
-            unknown += trace.unknown
-            cap_lines.append(_pulses(trace))
-        all_rises = np.sort(np.concatenate([c[0] for c in cap_lines]))
-        latencies = []
-        latency_out = 0
-        for k in np.flatnonzero(starts & has):
-            s = int(anchor[k])
-            t_s = strobe_on_t[s]
-            nxt = np.searchsorted(all_rises, t_s, side="left")
-            if nxt < all_rises.size and all_rises[nxt] < interval_edges[s + 1]:
-                delay = float(all_rises[nxt] - t_s)
-                latencies.append(delay)
-                if not expected["latency_lo"] <= delay <= expected["latency_hi"]:
-                    latency_out += 1
-        latency_all.extend(latencies)
-
-        matched = missing = extra = width_errors = gap_errors = unmeasurable = not_compared = 0
-        widths: list[float] = []
-        pred_counts = [0, 0]
-        got_counts = [0, 0]
-        # Per captured pulse (both lines): rise, fall, matched predicted index, width flagged.
-        merged: list[tuple[float, float, int, bool]] = []
-        for ln, line_name in enumerate(LINE_NAMES):
-            rises, falls, cut = cap_lines[ln]
-            not_compared += cut
-            sel = np.flatnonzero(line_of == ln)
-            order = np.argsort(p_rise[sel], kind="stable")
-            sel = sel[order]
-            pairs, miss, ext = _match(p_rise[sel], lo[sel], hi[sel], rises)
-            for i in miss:
-                k = int(sel[i])
-                if p_rise[k] + hi[k] >= capture.end:
-                    not_compared += 1
-                    continue
-                missing += 1
-                found.append(Discrepancy("missing", channel.name, line_name, float(p_rise[k]), float(p_rise[k]),
-                                         None))
-            for j in ext:
-                if rises[j] < first_strobe:
-                    not_compared += 1
-                    continue
-                extra += 1
-                found.append(Discrepancy("extra", channel.name, line_name, float(rises[j]), None, float(rises[j])))
-            pair_of = {j: int(sel[i]) for i, j in pairs}
-            matched += len(pairs)
-            for j in range(rises.size):
-                w_c = falls[j] - rises[j]
-                flagged = False
-                if not math.isnan(w_c):
-                    if w_c < bounds.measurable:
-                        unmeasurable += 1
-                    else:
-                        widths.append(float(w_c))
-                        k = pair_of.get(j)
-                        if k is not None and not math.isnan(p_fall[k]):
-                            w_p = p_fall[k] - p_rise[k]
-                            if abs(w_c - w_p) > bounds.length(w_p):
-                                width_errors += 1
-                                flagged = True
-                                found.append(Discrepancy("width", channel.name, line_name, float(rises[j]),
-                                                         float(w_p), float(w_c)))
-                merged.append((float(rises[j]), float(falls[j]), pair_of.get(j, -1), flagged))
-            # Counts over the compared span: captured from the first strobe, predicted up to the end.
-            in_span = rises >= first_strobe
-            got_counts[ln] = int(in_span.sum())
-            pred_sel = p_rise[sel]
-            pred_counts[ln] = int((pred_sel <= capture.end).sum())
-            strobe_counts[:, ch, ln, 0] = np.diff(np.searchsorted(rises, interval_edges))
-            strobe_counts[:, ch, ln, 1] = np.diff(np.searchsorted(np.sort(pred_sel[pred_sel <= capture.end]),
-                                                                  interval_edges))
-            predicted_out[f"{channel.name}_{line_name}"] = np.stack((p_rise[sel], p_fall[sel]), axis=1) \
-                if sel.size else np.empty((0, 2))
-        widths_all.append(np.asarray(widths))
-
-        # Low times: every pair of consecutive captured pulses; back-to-back ones against the bound.
-        merged.sort()
-        gaps: list[float] = []
-        least_low: float | None = None
-        chain: list[tuple[float, int]] = []  # (captured rise, model rise cycle) of back-to-back pulses
-        for (r0, f0, k0, bad0), (r1, _f1, k1, bad1) in zip(merged, merged[1:], strict=False):
-            back_to_back = k0 >= 0 and k1 >= 0 and rise_c[k1] - rise_c[k0] == spacing
-            if back_to_back:
-                if not chain:
-                    chain.append((r0, int(rise_c[k0])))
-                chain.append((r1, int(rise_c[k1])))
-            elif len(chain) > 1:
-                bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * T))
-                chain = []
-            else:
-                chain = []
-            if math.isnan(f0):
-                continue
-            low = r1 - f0
-            least_low = low if least_low is None else min(least_low, low)
-            if not back_to_back:
-                continue
-            if low < bounds.measurable:
-                unmeasurable += 1
-                continue
-            gaps.append(low)
-            g_p = p_rise[k1] - p_fall[k0]
-            if abs(low - g_p) > bounds.length(g_p) and not (bad0 or bad1):
-                gap_errors += 1
-                found.append(Discrepancy("gap", channel.name, LINE_NAMES[line_of[k1]], r1, float(g_p), low))
-        if len(chain) > 1:
-            bursts.append((chain[-1][0] - chain[0][0], (chain[-1][1] - chain[0][1]) * T))
-
-        # Running net count, captured minus model, at every strobe: a pulse handed over one
-        # strobe apart from the model shows as +1 then back to 0.
-        per_strobe = (strobe_counts[:, ch, POS, 0] - strobe_counts[:, ch, NEG, 0]
-                      - strobe_counts[:, ch, POS, 1] + strobe_counts[:, ch, NEG, 1])
-        running = np.cumsum(per_strobe)
-        running_max = int(np.abs(running).max()) if running.size else 0
-        flips = int(np.sum(per_strobe[:-1] * per_strobe[1:] == -1)) if per_strobe.size > 1 else 0
-
-        cap_pos = cap_lines[POS][0]
-        cap_neg = cap_lines[NEG][0]
-        net_captured = int(cap_pos.size - cap_neg.size)
-        in_capture = p_rise <= capture.end
-        net_model = int(np.sum(in_capture & (line_of == POS)) - np.sum(in_capture & (line_of == NEG)))
-        upto = min(end_cycle + 1, n_cyc)
-        live = [(a, b) for a, b in armed if a < upto]
-        # What the computer was owed: the rate over the last armed stretch (disarming clears the books).
-        commanded = integral(params, stim, ch, live, upto=min(upto, live[-1][1])) if live else 0
-        dv_program = commanded / (1 << hw.frac_bits) * channel.weight
-        # The model's books are at its last cycle, a few past the capture's end: take back what
-        # those cycles added, so that captured - program = -held when the capture matches the model.
-        books = result.channels[ch]
-        after = np.sum(~in_capture & (line_of == POS)) - np.sum(~in_capture & (line_of == NEG))
-        tail = (integral(params, stim, ch, live, upto=min(n_cyc, live[-1][1])) - commanded) if live else 0
-        held = (books.owed - tail) / (1 << hw.frac_bits) + books.pend_pos - books.pend_neg + float(after)
-        checks.append(ChannelCheck(
-            name=channel.name, unit=channel.unit, weight=channel.weight,
-            predicted=(pred_counts[POS], pred_counts[NEG]), captured=(got_counts[POS], got_counts[NEG]),
-            matched=matched, missing=missing, extra=extra, width_errors=width_errors, gap_errors=gap_errors,
-            unmeasurable=unmeasurable, not_compared=not_compared,
-            widths=Stats.of(widths), gaps=Stats.of(gaps), latency=Stats.of(latencies), latency_out=latency_out,
-            least_low=least_low, net_captured=net_captured, net_model=net_model,
-            dv_captured=net_captured * channel.weight, dv_model=net_model * channel.weight, dv_program=dv_program,
-            held_model=held, running_max=running_max, flips=flips, unknown=unknown,
-        ))
-
-    found.sort(key=lambda d: (d.time, d.channel, d.line, d.kind))
-    clock_ppm = clock_err = None
-    if len(bursts) >= 3:
-        seen, modelled = np.array(bursts).T
-        per_burst = seen / modelled - 1.0
-        clock_ppm = float(seen.sum() / modelled.sum() - 1.0) * 1e6
-        weights = modelled / modelled.sum()
-        clock_err = float(np.sqrt(np.sum(weights ** 2 * (per_burst * 1e6 - clock_ppm) ** 2)))
+    bursts = [b for o in outcomes for b in o.bursts]
+    clock_ppm, clock_err = _clock_offset(bursts)
+    if clock_ppm is not None:
         notes.append(f"the emulator's clock against the analyzer's: {clock_ppm:+.1f} ppm, standard error "
                      f"{clock_err:.1f} ppm, from the spacing of {len(bursts)} bursts (a real difference is a "
                      "delta-V scale error of the same size)")
@@ -958,23 +1028,22 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
         notes.append("a pulse handed over one strobe apart from the model (net count +1 at one strobe, -1 at the "
                      "next) can come from the time base: a capture fixes an asynchronous strobe's clock cycle "
                      "only to within one cycle (see docs/bench.md); check the running count")
-    mismatched = int(np.any(strobe_counts[..., 0] != strobe_counts[..., 1], axis=(1, 2)).sum())
     strobe_unknown = lines["strobe"].unknown + (lines["arm"].unknown if "arm" in lines else 0)
     if strobe_unknown:
         notes.append(f"{strobe_unknown} x/z value(s) read on the strobe or arm line (held at the last level)")
     if any(c.not_compared for c in checks):
         notes.append("pulses not compared: before the capture's first strobe, active at its start, or "
                      "predicted so close to its end that their window passes it")
-    total_unmeasurable = sum(c.unmeasurable for c in checks)
-    if total_unmeasurable:
-        notes.append(f"{total_unmeasurable} pulse(s) or gap(s) narrower than two samples "
+    unmeasurable = sum(c.unmeasurable for c in checks)
+    if unmeasurable:
+        notes.append(f"{unmeasurable} pulse(s) or gap(s) narrower than two samples "
                      f"({format_si(bounds.measurable, 's')}): flagged unmeasurable, not guessed; sample faster")
+    compared = any(c.matched for c in checks)
     if found:
         verdict = "fail"
-    elif (total_unmeasurable or strobe_unknown or any(c.unknown for c in checks)
-          or not any(c.matched for c in checks)):
+    elif unmeasurable or strobe_unknown or any(c.unknown for c in checks) or not compared:
         verdict = "inconclusive"
-        if not any(c.matched for c in checks):
+        if not compared:
             notes.append("no pulse was compared: nothing to judge")
     else:
         verdict = "pass"
@@ -982,11 +1051,11 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
         capture=capture, config_source=config.source,
         program_source=program.source if program else "none (the config's initial rates)",
         signals=signals, bounds=bounds, expected=expected, channels=tuple(checks), discrepancies=tuple(found),
-        strobe_times=strobe_on_t, strobe_counts=strobe_counts, strobe_mismatches=mismatched, verdict=verdict,
-        notes=tuple(notes), model_cycles=n_cyc, clock_ppm=clock_ppm, clock_ppm_error=clock_err,
-        lines=lines, predicted=predicted_out,
-        widths_all=np.concatenate(widths_all) if widths_all else np.empty(0),
-        latency_all=np.asarray(latency_all),
+        strobe_times=drive.strobe_t, strobe_counts=strobe_counts, strobe_mismatches=mismatched, verdict=verdict,
+        notes=tuple(notes), model_cycles=drive.stim.cycles, clock_ppm=clock_ppm, clock_ppm_error=clock_err,
+        lines=lines, predicted={k: v for o in outcomes for k, v in o.predicted.items()},
+        widths_all=np.asarray([w for o in outcomes for w in o.widths]),
+        latency_all=np.asarray([t for o in outcomes for t in o.latencies]),
     )
 
 
