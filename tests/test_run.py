@@ -1,0 +1,200 @@
+"""The pipeline and `dvgate run`: engines, placement, end-to-end runs and every bad input."""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from motionkit import fast_config
+
+from dvgate.cli import main
+from dvgate.errors import UserError
+from dvgate.run import default_engine, engine_by_name, load_profile, plan_run, run_pipeline
+from dvgate.sim.model import run_model
+from dvgate.sim.program import make_program
+
+EXAMPLES = Path(__file__).resolve().parent.parent / "dvgate" / "examples"
+
+FAST_TOML = """\
+clock = "1 MHz"
+[strobe]
+min_width = "3 us"
+absence_timeout = "50 ms"
+period = "10 ms"
+[pulses]
+scheme = "burst"
+rest = 1
+width = "1 us"
+gap = "1 us"
+[rate]
+frac_bits = 36
+clamp = 2000
+backlog = 4000
+[defaults]
+weight = "0.01 m/s"
+range = "16 g"
+[[channels]]
+name = "x"
+[[channels]]
+name = "y"
+[[channels]]
+name = "z"
+"""
+
+
+@pytest.fixture
+def config_file(tmp_path):
+    path = tmp_path / "fast.toml"
+    path.write_text(FAST_TOML)
+    return path
+
+
+def scenario(tmp_path, text, name="s.toml"):
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def test_default_engine_is_compiled_or_the_model():
+    engine, why = default_engine()
+    # Never Amaranth's cycle-by-cycle simulator: far too slow for billions of cycles.
+    assert engine is run_model or why.startswith("compiled")
+    assert engine_by_name("model")[0] is run_model
+    assert engine_by_name(None)[1] == why
+    with pytest.raises(UserError, match="engine = 'quantum'"):
+        engine_by_name("quantum")
+
+
+def test_any_engine_can_run_the_pipeline(tmp_path):
+    calls = []
+
+    def engine(params, stim, progress=None):
+        calls.append(progress)
+        return run_model(params, stim)
+
+    path = scenario(tmp_path, '[static]\nduration = "0.3 s"\n')
+    out = run_pipeline(path, fast_config(), engine=engine, engine_name="mine")
+    assert calls == [False]  # an engine with its own progress bar is told whether to show it
+    assert out.engine == "mine"
+    assert out.result.edges == ()  # dropped once counted
+    assert not out.books
+
+
+def test_plan_places_the_program(tmp_path):
+    cfg = fast_config()
+    profile = load_profile(scenario(tmp_path, '[static]\nduration = "0.05 s"\n'), cfg)
+    program = make_program(profile, cfg)
+    plan = plan_run(program, cfg, read_every=10_000)
+    assert plan.origin == 5  # three channels, one commit, one spare
+    assert plan.stimulus.arm_changes == ((4, True),)  # armed from the origin on
+    assert plan.stimulus.rate_changes[0].cycle == plan.origin
+    assert (plan.stop - plan.origin) % 10_000 == 0
+    assert plan.stop >= plan.origin + program.total_ticks + cfg.strobe_period_cyc
+    assert plan.strobe_edges[0] == plan.origin + cfg.strobe_period_cyc
+    # the detector takes a strobe M + 1 cycles after the pin turns active (docs/timing.md)
+    assert plan.takes[0] == plan.strobe_edges[0] + cfg.hw.min_width_cyc + 1
+
+
+def test_host_read_error_stays_within_one_pulse(tmp_path):
+    # Reads fall on strobe edges, so each read sees every pulse of the strobes before it:
+    # the count differs from the program's integral at the last strobe by less than one
+    # pulse (first-order error feedback keeps the running error within one quantum:
+    # Schreier and Temes, Understanding Delta-Sigma Data Converters).
+    out = run_pipeline(EXAMPLES / "scenario_centrifuge.toml", fast_config(), engine=run_model)
+    assert np.abs(out.error).max() < 1.0
+    assert out.result.status.clamps == 0 and out.result.status.overruns == 0
+    # the commanded velocity at the end is the program's integral
+    np.testing.assert_allclose(out.commanded[-1], out.program.velocity(out.program.total_ticks)[0])
+
+
+def test_sensor_model_shows_in_the_outcome(tmp_path):
+    cfg = fast_config(sensor={"bias": {"y": "1 mg"}})
+    out = run_pipeline(scenario(tmp_path, '[static]\nduration = "2 s"\n'), cfg, engine=run_model)
+    # 1 mg over 2 s: 2 x 9.80665e-3 m/s (standard gravity, 3rd CGPM)
+    assert out.commanded[-1, 1] - out.true_velocity[-1, 1] == pytest.approx(2 * 9.80665e-3, abs=1e-9)
+    assert out.sensor.model.active
+
+
+def test_load_profile_by_extension(tmp_path):
+    with pytest.raises(UserError, match=r"expected a scenario file \(\.toml\) or a CSV profile \(\.csv\)"):
+        load_profile(tmp_path / "profile.txt", fast_config())
+
+
+def test_cli_writes_the_report(tmp_path, config_file, capsys):
+    out_dir = tmp_path / "report"
+    path = scenario(tmp_path, '[tumble]\ndwell = "0.3 s"\ntransition = "0.2 s"\n')
+    assert main(["run", str(path), str(config_file), "-o", str(out_dir), "--engine", "model"]) == 0
+    printed = capsys.readouterr().out
+    assert "what the computer read" in printed and "books" in printed
+    for name in ("summary.json", "summary.md", "program.npz", "velocity.png", "error.png", "load.png",
+                 "timeline.png"):
+        assert (out_dir / name).is_file(), name
+    summary = json.loads((out_dir / "summary.json").read_text())
+    assert summary["books_balance"] and summary["engine"].startswith("reference model")
+    assert [c["name"] for c in summary["channels"]] == ["x", "y", "z"]
+
+
+def test_cli_runs_a_csv(tmp_path, config_file):
+    out_dir = tmp_path / "report"
+    assert main(["run", str(EXAMPLES / "profile_example.csv"), str(config_file), "-o", str(out_dir),
+                 "--engine", "model"]) == 0
+    summary = json.loads((out_dir / "summary.json").read_text())
+    z = summary["channels"][2]
+    # 1 g for 4 s plus the extra half g ramped up, held and down: (1 + 0.5 x 1.5) g s
+    assert z["dv_commanded"] == pytest.approx(9.80665 * (4.0 + 0.5 * 1.5), abs=1e-6)
+    assert abs(z["dv_host"] - z["dv_commanded"]) < 0.01
+
+
+CSV_HEAD = "time [s], x [m/s^2], y [m/s^2], z [m/s^2]\n"
+BAD = [
+    ("p.csv", CSV_HEAD + "0, 0, 0, 0\n1, nan, 0, 0\n", r"p\.csv: line 3, column 'x': 'nan' is not a finite number"),
+    ("p.csv", CSV_HEAD + "0, 0, 0, 0\n1, 0, , 0\n", r"p\.csv: line 3, column 'y': empty cell"),
+    ("p.csv", CSV_HEAD + "0, 0, 0, 0\n2, 0, 0, 0\n1, 0, 0, 0\n", r"p\.csv: line 4, column 'time': time goes backwards"),
+    ("p.csv", "time [s], x [m/s^2], y [m/s^2]\n0, 0, 0\n1, 0, 0\n", r"p\.csv: line 1: missing column\(s\) 'z'"),
+    ("p.csv", CSV_HEAD.replace("z [", "zz [") + "0, 0, 0, 0\n1, 0, 0, 0\n",
+     r"p\.csv: line 1, column 4: unknown column 'zz'"),
+    ("p.csv", CSV_HEAD.replace("y [m/s^2]", "y [deg/s]") + "0, 0, 0, 0\n1, 0, 0, 0\n",
+     r"p\.csv: line 1, column 'y': unit 'deg/s' is not an acceleration"),
+    ("p.csv", CSV_HEAD + "0, 0, 0, 0\n1, 0, 0, 200\n2, 0, 0, 0\n",
+     r"p\.csv: line 3, column 'z' \(t = 1 s\): \+200 m/s\^2 .* beyond the full scale"),
+    ("s.toml", '[tumble]\ndwel = "1 s"\n', r"s\.toml: unknown key 'tumble\.dwel'; did you mean 'tumble\.dwell'\?"),
+    ("s.toml", 'titel = "x"\n[static]\n', r"s\.toml: unknown key 'titel'; did you mean 'title'\?"),
+    ("s.json", "{}", r"expected a scenario file"),
+]
+
+
+@pytest.mark.parametrize(("name", "text", "message"), BAD)
+def test_cli_bad_input_exits_2_and_writes_nothing(tmp_path, config_file, capsys, name, text, message):
+    import re
+
+    path = scenario(tmp_path, text, name)
+    out_dir = tmp_path / "out" / "report"
+    out_dir.parent.mkdir()
+    assert main(["run", str(path), str(config_file), "-o", str(out_dir)]) == 2
+    err = capsys.readouterr().err
+    assert re.search(message, err), err
+    assert "Traceback" not in err
+    assert list(out_dir.parent.iterdir()) == []  # no report, no temporary folder
+
+
+def test_cli_computation_cycle_shorter_than_strobe_period(tmp_path, capsys):
+    config = tmp_path / "fast.toml"
+    config.write_text(FAST_TOML.replace('[strobe]', '[host]\ncycle = "2 ms"\n[strobe]'))
+    out_dir = tmp_path / "out" / "report"
+    out_dir.parent.mkdir()
+    path = scenario(tmp_path, '[static]\nduration = "0.1 s"\n')
+    assert main(["run", str(path), str(config), "-o", str(out_dir)]) == 2
+    err = capsys.readouterr().err
+    assert "host.cycle = '2 ms' (2000 cycles): allowed: at least the strobe period" in err
+    assert str(config) in err
+    assert list(out_dir.parent.iterdir()) == []
+
+
+def test_cli_refuses_to_overwrite_a_foreign_folder(tmp_path, config_file, capsys):
+    busy = tmp_path / "busy"
+    busy.mkdir()
+    (busy / "notes.txt").write_text("keep me")
+    path = scenario(tmp_path, '[static]\nduration = "0.1 s"\n')
+    assert main(["run", str(path), str(config_file), "-o", str(busy)]) == 2
+    assert "is not a dvgate report folder" in capsys.readouterr().err
+    assert (busy / "notes.txt").read_text() == "keep me"
