@@ -38,5 +38,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("-o", "--output", metavar="DIR", default="dvgate-report",
                         help="report folder (default: dvgate-report); an earlier report there is replaced")
     parser.add_argument("--engine", choices=ENGINE_NAMES, default=None,
-                        help="simulation engine (default: the fastest for long runs, see `dvgate run --help`)")
+                        help="simulation engine (default: the compiled gateware where a C++ compiler is found, "
+                             "else the event-driven reference model; never Amaranth's slow simulator)")
     parser.set_defaults(func=run)
