@@ -1,0 +1,107 @@
+"""Frame encoder: a payload read byte by byte, sent as a stuffed frame with its CRC.
+
+Format: ``docs/link.md``, section "Frames".
+"""
+
+from amaranth.hdl import Module, Mux, Signal
+from amaranth.lib import crc, stream, wiring
+from amaranth.lib.wiring import In, Out
+
+from dvgate.linkspec import ESC, ESC_XOR, FLAG
+
+
+class FrameEncoder(wiring.Component):
+    """Send flag, type, length, payload and CRC-16 (big-endian), escaping as it goes.
+
+    The payload is not held here: while sending, the encoder shows the index of the
+    payload byte it needs on ``idx`` and reads ``data`` in the same cycle (the parent
+    muxes it from a snapshot that stays still until ``busy`` falls).
+
+    Parameters
+    ----------
+    max_len : int
+        Longest payload (1 to 255).
+
+    Attributes
+    ----------
+    start : Signal(1), in
+        Begin a frame of type ``type`` and ``length`` payload bytes (ignored while busy).
+    type, length : Signal(8), in
+        Sampled with ``start``.
+    idx : Signal(8), out
+        Index of the payload byte wanted.
+    data : Signal(8), in
+        The payload byte at ``idx``.
+    o : stream.Signature(8), out
+        Bytes for the UART transmitter.
+    busy : Signal(1), out
+        A frame is being sent.
+    """
+
+    def __init__(self, max_len: int) -> None:
+        if not 1 <= max_len <= 255:
+            raise ValueError(f"max_len must be 1 to 255, not {max_len!r}")
+        self._max_len = max_len
+        super().__init__({
+            "start": In(1),
+            "type": In(8),
+            "length": In(8),
+            "idx": Out(8),
+            "data": In(8),
+            "o": Out(stream.Signature(8)),
+            "busy": Out(1),
+        })
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        m.submodules.crc = gen = crc.catalog.CRC16_CCITT_FALSE(data_width=8).create()
+
+        ftype   = Signal(8)
+        length  = Signal(8)
+        j       = Signal(9)
+        escaped = Signal()
+        value   = Signal(8)
+        special = Signal()
+
+        m.d.comb += [
+            self.idx.eq(j - 2),
+            special.eq((value == FLAG) | (value == ESC)),
+            gen.data.eq(value),
+        ]
+        with m.If(j == 0):
+            m.d.comb += value.eq(ftype)
+        with m.Elif(j == 1):
+            m.d.comb += value.eq(length)
+        with m.Elif(j == length + 2):
+            m.d.comb += value.eq(gen.crc[8:16])
+        with m.Elif(j == length + 3):
+            m.d.comb += value.eq(gen.crc[0:8])
+        with m.Else():
+            m.d.comb += value.eq(self.data)
+
+        sent = self.o.valid & self.o.ready
+        with m.FSM():
+            with m.State("IDLE"):
+                with m.If(self.start):
+                    m.d.sync += [ftype.eq(self.type), length.eq(self.length), j.eq(0), escaped.eq(0)]
+                    m.d.comb += gen.start.eq(1)
+                    m.next = "FLAG"
+            with m.State("FLAG"):
+                m.d.comb += [self.busy.eq(1), self.o.valid.eq(1), self.o.payload.eq(FLAG)]
+                with m.If(sent):
+                    m.next = "BODY"
+            with m.State("BODY"):
+                m.d.comb += [
+                    self.busy.eq(1),
+                    self.o.valid.eq(1),
+                    self.o.payload.eq(Mux(escaped, value ^ ESC_XOR, Mux(special, ESC, value))),
+                ]
+                with m.If(sent):
+                    with m.If(special & ~escaped):
+                        m.d.sync += escaped.eq(1)
+                    with m.Else():
+                        m.d.sync += [escaped.eq(0), j.eq(j + 1)]
+                        m.d.comb += gen.valid.eq(j < length + 2)
+                        with m.If(j == length + 3):
+                            m.next = "IDLE"
+        return m

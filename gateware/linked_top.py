@@ -1,0 +1,187 @@
+"""The emulator with its host link: UART, frames, segment FIFO and player, telemetry.
+
+Ports: the emulator's strobe and outputs, an arm pin, the serial pins and status lines
+for LEDs. Rules: ``docs/link.md`` (the link) and ``docs/timing.md`` (the emulator).
+"""
+
+from pathlib import Path
+
+from amaranth.back import verilog
+from amaranth.hdl import Cat, Module, Signal
+from amaranth.lib import wiring
+from amaranth.lib.wiring import In, Out
+
+from dvgate.gateware.link import HostLink
+from dvgate.gateware.segments import SegmentPlayer
+from dvgate.gateware.top import Emulator
+from dvgate.gateware.uart_rx import UartRx
+from dvgate.gateware.uart_tx import UartTx
+from dvgate.linkspec import FLAG_BITS, LinkParams
+
+#: Width of the per-line pulse counters (wrap).
+PULSE_COUNT_BITS = 32
+
+
+class LinkedTop(wiring.Component):
+    """:class:`~dvgate.gateware.top.Emulator` fed by segments over a UART.
+
+    The outputs are armed when the host has armed them *and* the ``arm`` pin is high
+    (tie it high on a board without an arm switch). Each output line's pulses are
+    counted (rising edges of the logical line) for the telemetry.
+
+    Parameters
+    ----------
+    link : LinkParams
+        The emulator (``link.hw``) and its link.
+
+    Attributes
+    ----------
+    strobe : Signal(1), in
+        Raw strobe pin.
+    arm : Signal(1), in
+        Arm switch; outputs are enabled only while it is high and the host has armed them.
+    rx : Signal(1), in
+        Serial receive pin (idles high).
+    tx : Signal(1), out
+        Serial transmit pin (idles high).
+    <name>_pos, <name>_neg : Signal(1), out
+        Output lines of each channel, physical level.
+    armed, playing, starved, link_error : Signal(1), out
+        Status for LEDs: outputs armed; playing a program; out of segments (underrun);
+        a frame was rejected (sticky until reset).
+    emulator, player, host : components
+        The parts (for testbenches).
+    """
+
+    def __init__(self, link: LinkParams) -> None:
+        self._link = link
+        hw = link.hw
+        members = {
+            "strobe": In(1),
+            "arm": In(1),
+            "rx": In(1, init=1),
+            "tx": Out(1, init=1),
+        }
+        for name in hw.names:
+            members[f"{name}_pos"] = Out(1, init=int(hw.active_low))
+            members[f"{name}_neg"] = Out(1, init=int(hw.active_low))
+        members.update({"armed": Out(1), "playing": Out(1), "starved": Out(1), "link_error": Out(1)})
+        super().__init__(members)
+        self.emulator = Emulator(hw)
+        self.player = SegmentPlayer(link)
+        self.host = HostLink(link)
+        self.uart_rx = UartRx(link.bit_cyc)
+        self.uart_tx = UartTx(link.bit_cyc)
+        self.counters: list[tuple[Signal, Signal]] = [
+            (Signal(PULSE_COUNT_BITS, name=f"{name}_pos_count"), Signal(PULSE_COUNT_BITS, name=f"{name}_neg_count"))
+            for name in hw.names
+        ]
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        link = self._link
+        hw = link.hw
+
+        m.submodules.emulator = emu = self.emulator
+        m.submodules.player = player = self.player
+        m.submodules.host = host = self.host
+        m.submodules.uart_rx = urx = self.uart_rx
+        m.submodules.uart_tx = utx = self.uart_tx
+
+        wiring.connect(m, urx.o, host.i)
+        wiring.connect(m, host.o, utx.i)
+        m.d.comb += [
+            urx.rx.eq(self.rx),
+            self.tx.eq(utx.tx),
+            player.w_data.eq(host.w_data),
+            player.w_en.eq(host.w_en),
+            player.w_commit.eq(host.w_commit),
+            player.w_rollback.eq(host.w_rollback),
+            host.room.eq(player.room),
+            player.start.eq(host.start),
+            player.arm_on.eq(host.arm_on),
+            player.stop.eq(host.stop),
+            emu.strobe.eq(self.strobe),
+            emu.arm.eq(player.arm & self.arm),
+            emu.rate_addr.eq(player.rate_addr),
+            emu.rate_data.eq(player.rate_data),
+            emu.rate_we.eq(player.rate_we),
+            emu.rate_commit.eq(player.rate_commit),
+            self.armed.eq(player.arm & self.arm),
+            self.playing.eq(player.play != 0),
+            self.starved.eq(player.play == 2),
+        ]
+        with m.If(host.reject_stb):
+            m.d.sync += self.link_error.eq(1)
+
+        # Pulses started on each line: rising edges of the logical lines. A pulse counts
+        # from the cycle its line is high, the cycle the emitter's pending count drops.
+        pos_now, neg_now, pend_pos, pend_neg, owed = [], [], [], [], []
+        for i, name in enumerate(hw.names):
+            em = emu.emitters[i]
+            pos_port, neg_port = emu.output_ports(i)
+            m.d.comb += [
+                getattr(self, f"{name}_pos").eq(pos_port),
+                getattr(self, f"{name}_neg").eq(neg_port),
+            ]
+            for line, (count, label) in ((em.pos, (self.counters[i][0], "pos")),
+                                         (em.neg, (self.counters[i][1], "neg"))):
+                before = Signal(name=f"{name}_{label}_before")
+                rise = Signal(name=f"{name}_{label}_rise")
+                now = Signal(PULSE_COUNT_BITS, name=f"{name}_{label}_now")
+                m.d.sync += before.eq(line)
+                m.d.comb += [rise.eq(line & ~before), now.eq(count + rise)]
+                m.d.sync += count.eq(now)
+                (pos_now if label == "pos" else neg_now).append(now)
+            pend_pos.append(em.pend_pos)
+            pend_neg.append(em.pend_neg)
+            owed.append(emu.accumulators[i].owed)
+
+        tm = host.tm
+        # The state byte: play (bits 0-1), armed by the host, arm pin, host absent (STATE_BITS).
+        m.d.comb += [
+            tm.state.eq(Cat(player.play, player.arm, self.arm, emu.host_absent)),
+            tm.flags.eq(Cat(*(getattr(emu.flags, name) for name in FLAG_BITS))),
+            tm.level.eq(player.level),
+            tm.free.eq(player.free),
+            tm.played.eq(player.played),
+            tm.underruns.eq(player.underruns),
+            tm.strobes.eq(emu.strobes),
+            tm.period.eq(emu.period),
+            tm.overruns.eq(emu.overruns),
+            tm.clamps.eq(emu.clamps),
+            tm.deferrals.eq(emu.deferrals),
+            tm.saturations.eq(emu.saturations),
+        ]
+        with m.Switch(host.tm_channel):
+            for i in range(hw.n):
+                with m.Case(i):
+                    m.d.comb += [
+                        tm.pos.eq(pos_now[i]),
+                        tm.neg.eq(neg_now[i]),
+                        tm.pend_pos.eq(pend_pos[i]),
+                        tm.pend_neg.eq(pend_neg[i]),
+                        tm.owed.eq(owed[i]),
+                    ]
+        return m
+
+
+def write_linked_verilog(link: LinkParams, path: str | Path | None = None) -> str:
+    """Verilog of the emulator with its host link, top module ``dvgate_linked``.
+
+    Parameters
+    ----------
+    link : LinkParams
+        The emulator and its link.
+    path : str or Path, optional
+        Also write the text to this file.
+
+    Returns
+    -------
+    str
+        The Verilog source.
+    """
+    text = verilog.convert(LinkedTop(link), name="dvgate_linked")
+    if path is not None:
+        Path(path).write_text(text)
+    return text
