@@ -148,7 +148,7 @@ class ChannelDefaults(_Strict):
 
     weight: Weight = Field(default="0.01 m/s")
     range: Rate = Field(default="16 g")
-    rate: Rate = Field(default="0 g")
+    rate: Rate | None = None  # zero, in the channel's own kind of rate
 
 
 class ChannelConfig(_Strict):
@@ -291,6 +291,8 @@ class Config:
             where = f"channels[{index}]" if isinstance(model.channels, list) else "defaults"
             kind = rate_kind(weight)
             for field, q in (("range", range_), ("rate", rate)):
+                if q is None:
+                    continue
                 is_accel = q.unit in ("m/s^2", "m/s2", "g", "mg")
                 if is_accel != (kind == "acceleration"):
                     wanted = "an acceleration (m/s^2, g, mg)" if kind == "acceleration" else \
@@ -299,11 +301,12 @@ class Config:
                           q.text, f"{wanted}, to match the pulse weight {weight.text!r}")
             if range_.value <= 0:
                 _fail(f"{where}.range", range_.text, "a full scale greater than zero")
-            if abs(rate.value) > range_.value:
+            rate_value = rate.value if rate is not None else 0.0
+            if abs(rate_value) > range_.value:
                 _fail(f"{where}.rate" if entry.rate else "defaults.rate", rate.text,
                       f"a rate within the full scale of +/-{range_.text}")
             out.append(Channel(entry.name, weight.value, "m/s" if kind == "acceleration" else "rad",
-                               range_.value, rate.value))
+                               range_.value, rate_value))
         return tuple(out)
 
     def _hardware_params(self) -> HardwareParams:

@@ -13,16 +13,33 @@ import re
 STANDARD_GRAVITY = 9.80665
 
 _NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
-_QUANTITY = re.compile(rf"^\s*({_NUMBER})\s*([A-Za-z/^0-9*]*)\s*$")
+_QUANTITY = re.compile(rf"^\s*({_NUMBER})\s*(\S.*?)?\s*$")
 
 #: Units of each kind, as the factor to the SI unit.
 KINDS: dict[str, dict[str, float]] = {
     "time": {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9},
     "frequency": {"Hz": 1.0, "kHz": 1e3, "MHz": 1e6},
     "acceleration": {"m/s^2": 1.0, "m/s2": 1.0, "g": STANDARD_GRAVITY, "mg": STANDARD_GRAVITY * 1e-3},
-    "angular_rate": {"rad/s": 1.0, "deg/s": math.pi / 180.0},
+    "angular_rate": {"rad/s": 1.0, "deg/s": math.pi / 180.0, "rpm": 2.0 * math.pi / 60.0},
     "velocity": {"m/s": 1.0, "cm/s": 1e-2, "mm/s": 1e-3},
     "angle": {"rad": 1.0, "mrad": 1e-3, "urad": 1e-6, "deg": math.pi / 180.0},
+    # Kinds that motion profiles and sensor errors need.
+    "length": {"m": 1.0, "km": 1e3, "cm": 1e-2, "mm": 1e-3},
+    "mass": {"kg": 1.0, "t": 1e3},
+    "force": {"N": 1.0, "kN": 1e3},
+    "mass_flow": {"kg/s": 1.0, "g/s": 1e-3},
+    "area": {"m^2": 1.0, "m2": 1.0, "cm^2": 1e-4, "cm2": 1e-4},
+    # Small accelerations (sensor bias): micro-g is the trade's unit.
+    "small_acceleration": {"ug": STANDARD_GRAVITY * 1e-6, "µg": STANDARD_GRAVITY * 1e-6,
+                           "mg": STANDARD_GRAVITY * 1e-3, "g": STANDARD_GRAVITY, "m/s^2": 1.0, "m/s2": 1.0},
+    # Scale-factor error, as a fraction.
+    "ratio": {"ppm": 1e-6, "%": 1e-2},
+    # Second-order coefficient, per (m/s^2): micro-g per g squared.
+    "second_order": {"ug/g^2": 1e-6 / STANDARD_GRAVITY, "ug/g2": 1e-6 / STANDARD_GRAVITY,
+                     "µg/g^2": 1e-6 / STANDARD_GRAVITY, "/(m/s^2)": 1.0},
+    # Velocity random walk, in m/s per root second.
+    "velocity_random_walk": {"m/s/sqrt(h)": 1.0 / 60.0, "m/s/sqrt(s)": 1.0, "m/s/sqrt(Hz)": 1.0},
+    "share": {"%": 1e-2},
 }
 
 

@@ -51,7 +51,7 @@ Mass = q.field("mass", positive=True)
 Force = q.field("force", positive=True)
 MassFlow = q.field("mass_flow", positive=True)
 Area = q.field("area", minimum=0.0)
-AngularRate = q.field("angular_rate_ext")
+AngularRate = q.field("angular_rate")
 
 
 def axis_vector(text: str) -> np.ndarray:

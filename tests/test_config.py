@@ -98,3 +98,10 @@ def test_cli_bad_file_exits_2(tmp_path, capsys, text, needle):
 def test_cli_missing_file(tmp_path, capsys):
     assert main(["check", str(tmp_path / "none.toml")]) == 2
     assert "no such file" in capsys.readouterr().err
+
+
+def test_mixed_gyro_and_accelerometer_channels_default_to_zero_rate():
+    config = parse_config({"channels": [{"name": "roll", "weight": "1e-5 rad", "range": "10 rad/s"},
+                                        {"name": "x"}]})
+    assert [ch.rate for ch in config.channels] == [0.0, 0.0]
+    assert [ch.unit for ch in config.channels] == ["rad", "m/s"]
