@@ -55,6 +55,8 @@ class RateAccumulator(wiring.Component):
         Outputs armed; while low, ``owed`` is cleared.
     accept : Signal(1), in
         From the emitter: the pulses asked for fit the backlog.
+    no_rest : Signal(1), in
+        Fault: a hand-over this cycle adds no rest pulses (burst).
     n : Signal(signed), out
         Net count a strobe would ask for now (combinational from ``owed``).
     new_pos, new_neg : Signal(unsigned), out
@@ -78,6 +80,7 @@ class RateAccumulator(wiring.Component):
             "take": In(1),
             "armed": In(1),
             "accept": In(1),
+            "no_rest": In(1),
             "n": Out(net_shape(params)),
             "new_pos": Out(count_shape(params)),
             "new_neg": Out(count_shape(params)),
@@ -108,8 +111,8 @@ class RateAccumulator(wiring.Component):
             m.d.comb += [
                 clamp.eq((whole > p.clamp) | (whole < -p.clamp)),
                 self.n.eq(Mux(whole > p.clamp, p.clamp, Mux(whole < -p.clamp, -p.clamp, whole))),
-                self.new_pos.eq(p.rest + Mux(self.n > 0, self.n, 0)),
-                self.new_neg.eq(p.rest + Mux(self.n < 0, -self.n, 0)),
+                self.new_pos.eq(Mux(self.no_rest, 0, p.rest) + Mux(self.n > 0, self.n, 0)),
+                self.new_neg.eq(Mux(self.no_rest, 0, p.rest) + Mux(self.n < 0, -self.n, 0)),
             ]
         elif p.scheme == "binary":
             m.d.comb += [

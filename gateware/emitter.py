@@ -56,6 +56,9 @@ class PulseEmitter(wiring.Component):
         The emitter is not idle (a strobe taken now is an overrun).
     pos, neg : Signal(1), out
         Logical output lines (registered, already gated with ``armed``).
+    line_pos_next, line_neg_next : Signal(1), out
+        The values ``pos`` and ``neg`` take next cycle (combinational), for a stage that
+        registers the lines again after changing them (the fault stage).
     pend_pos, pend_neg : Signal(range(backlog + 1)), out
         Pulses waiting on each line (not counting one being played).
     """
@@ -72,6 +75,8 @@ class PulseEmitter(wiring.Component):
             "busy": Out(1),
             "pos": Out(1),
             "neg": Out(1),
+            "line_pos_next": Out(1),
+            "line_neg_next": Out(1),
             "pend_pos": Out(range(params.backlog + 1)),
             "pend_neg": Out(range(params.backlog + 1)),
         })
@@ -146,13 +151,17 @@ class PulseEmitter(wiring.Component):
             m.d.comb += timer_next.eq(timer - 1)
 
         high_next = (mode_next == Mode.HIGH) & self.armed_next
+        m.d.comb += [
+            self.line_pos_next.eq(high_next & (last_next == POS)),
+            self.line_neg_next.eq(high_next & (last_next == NEG)),
+        ]
         m.d.sync += [
             mode.eq(mode_next),
             timer.eq(timer_next),
             last.eq(last_next),
             self.pend_pos.eq(pos_next),
             self.pend_neg.eq(neg_next),
-            self.pos.eq(high_next & (last_next == POS)),
-            self.neg.eq(high_next & (last_next == NEG)),
+            self.pos.eq(self.line_pos_next),
+            self.neg.eq(self.line_neg_next),
         ]
         return m

@@ -1,8 +1,8 @@
 """The emulator's top: one strobe detector, rate registers and a pulse pair per channel.
 
 Cycle rules: ``docs/timing.md``. Port names are a contract (board builds, host link,
-testbenches): ``strobe``, ``arm``, ``rate_*``, ``<name>_pos``/``<name>_neg`` and the
-status ports.
+testbenches): ``strobe``, ``arm``, ``rate_*``, ``fault_*``, ``ignore_*``,
+``<name>_pos``/``<name>_neg`` and the status ports.
 """
 
 import re
@@ -15,9 +15,11 @@ from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.accumulator import RateAccumulator
 from dvgate.gateware.emitter import PulseEmitter
+from dvgate.gateware.faults import FaultLayout, FaultStage
 from dvgate.gateware.rates import RateRegisters, addr_bits
 from dvgate.gateware.strobe import StrobeDetector
 from dvgate.params import EVENT_COUNT_BITS, STROBE_COUNT_BITS, HardwareParams
+from dvgate.sim.trace import IGNORE_CYCLES_BITS
 
 _EVENT_MAX = (1 << EVENT_COUNT_BITS) - 1
 #: A channel name must make valid port names (``<name>_pos``).
@@ -58,6 +60,17 @@ class Emulator(wiring.Component):
         Write ``rate_data`` to the shadow of ``rate_addr``.
     rate_commit : Signal(1), in
         Copy every shadow to the live rates (a write in the same cycle included).
+    fault_addr : Signal(max(1, ceil_log2(n))), in
+        Channel whose fault set ``fault_we`` writes.
+    fault_data : FaultLayout, in
+        The channel's whole fault set; in force from the cycle after the write.
+    fault_we : Signal(1), in
+        Write ``fault_data`` as the fault set of ``fault_addr``.
+    ignore_we : Signal(1), in
+        Start an ignore window next cycle, replacing the one in force.
+    ignore_cycles : Signal(32), in
+        Length of the window ``ignore_we`` starts: strobes detected in the next
+        ``ignore_cycles`` cycles are not taken.
     <name>_pos, <name>_neg : Signal(1), out
         Output lines of each channel, physical level (logical XOR ``active_low``);
         idle while not armed.
@@ -69,6 +82,8 @@ class Emulator(wiring.Component):
         Sticky ``overrun``, ``clamped``, ``deferred``, ``saturated``.
     overruns, clamps, deferrals, saturations : Signal(16), out
         Cycles in which any channel had the event; saturating.
+    ignored : Signal(16), out
+        Strobes detected inside an ignore window (armed or not); saturating.
     detector : StrobeDetector
         The strobe detector (for testbenches).
     rate_regs : RateRegisters
@@ -77,6 +92,8 @@ class Emulator(wiring.Component):
         One per channel, in port order (for testbenches).
     emitters : list of PulseEmitter
         One per channel, in port order (for testbenches).
+    fault_stages : list of FaultStage
+        One per channel, in port order: the fault set and the output registers.
     """
 
     def __init__(self, params: HardwareParams) -> None:
@@ -97,6 +114,11 @@ class Emulator(wiring.Component):
             "rate_data": In(signed(params.rate_bits)),
             "rate_we": In(1),
             "rate_commit": In(1),
+            "fault_addr": In(addr_bits(params)),
+            "fault_data": In(FaultLayout),
+            "fault_we": In(1),
+            "ignore_we": In(1),
+            "ignore_cycles": In(IGNORE_CYCLES_BITS),
         }
         for name in names:
             members[f"{name}_pos"] = Out(1)
@@ -110,6 +132,7 @@ class Emulator(wiring.Component):
             "clamps": Out(EVENT_COUNT_BITS),
             "deferrals": Out(EVENT_COUNT_BITS),
             "saturations": Out(EVENT_COUNT_BITS),
+            "ignored": Out(EVENT_COUNT_BITS),
         })
         super().__init__(members)
 
@@ -120,6 +143,7 @@ class Emulator(wiring.Component):
         self.rate_regs = RateRegisters(params)
         self.accumulators = [RateAccumulator(params) for _ in names]
         self.emitters = [PulseEmitter(params) for _ in names]
+        self.fault_stages = [FaultStage(params) for _ in names]
 
     def output_ports(self, channel: int) -> tuple[Signal, Signal]:
         """The physical ``(pos, neg)`` output ports of channel ``channel``."""
@@ -133,17 +157,22 @@ class Emulator(wiring.Component):
         m.submodules.detector = det = self.detector
         m.submodules.rate_regs = regs = self.rate_regs
 
-        armed     = Signal()
-        take      = Signal()
-        overrun   = Signal(p.n)
-        clamped   = Signal(p.n)
-        deferred  = Signal(p.n)
-        saturated = Signal(p.n)
+        armed       = Signal()
+        stb         = Signal()
+        take        = Signal()
+        ignore_left = Signal(IGNORE_CYCLES_BITS)
+        ignoring    = Signal()
+        overrun     = Signal(p.n)
+        clamped     = Signal(p.n)
+        deferred    = Signal(p.n)
+        saturated   = Signal(p.n)
 
         m.d.sync += armed.eq(self.arm)
         m.d.comb += [
             det.pin.eq(self.strobe),
-            take.eq(det.stb & armed),
+            stb.eq(det.stb),
+            ignoring.eq(ignore_left != 0),
+            take.eq(stb & armed & ~ignoring),
             self.strobes.eq(det.strobes),
             self.period.eq(det.period),
             self.host_absent.eq(det.host_absent),
@@ -153,24 +182,40 @@ class Emulator(wiring.Component):
             regs.commit.eq(self.rate_commit),
         ]
 
-        for i, (name, acc, em) in enumerate(zip(p.names, self.accumulators, self.emitters,
-                                                strict=True)):
+        # The window counts down the cycles left; a write replaces it.
+        with m.If(self.ignore_we):
+            m.d.sync += ignore_left.eq(self.ignore_cycles)
+        with m.Elif(ignoring):
+            m.d.sync += ignore_left.eq(ignore_left - 1)
+        with m.If(stb & ignoring & (self.ignored != _EVENT_MAX)):
+            m.d.sync += self.ignored.eq(self.ignored + 1)
+
+        for i, (name, acc, em, fs) in enumerate(zip(p.names, self.accumulators, self.emitters,
+                                                    self.fault_stages, strict=True)):
             m.submodules[f"{name}_acc"] = acc
             m.submodules[f"{name}_emit"] = em
+            m.submodules[f"{name}_fault"] = fs
             pos_port, neg_port = self.output_ports(i)
             m.d.comb += [
                 acc.rate.eq(regs.rates[i]),
                 acc.take.eq(take),
                 acc.armed.eq(armed),
                 acc.accept.eq(em.accept),
+                acc.no_rest.eq(fs.faults.no_rest),
                 em.load.eq(acc.load),
                 em.new_pos.eq(acc.new_pos),
                 em.new_neg.eq(acc.new_neg),
                 em.armed.eq(armed),
                 # armed(k+1) = arm(k): the output registers see the next armed value.
                 em.armed_next.eq(self.arm),
-                pos_port.eq(em.pos ^ p.active_low),
-                neg_port.eq(em.neg ^ p.active_low),
+                fs.we.eq(self.fault_we & (self.fault_addr == i)),
+                fs.data.eq(self.fault_data),
+                fs.line_pos_next.eq(em.line_pos_next),
+                fs.line_neg_next.eq(em.line_neg_next),
+                fs.armed_next.eq(self.arm),
+                # The pins come straight from the fault stage's registers.
+                pos_port.eq(fs.pos ^ p.active_low),
+                neg_port.eq(fs.neg ^ p.active_low),
                 overrun[i].eq(take & em.busy),
                 clamped[i].eq(acc.clamp_evt),
                 deferred[i].eq(acc.defer_evt),

@@ -5,15 +5,20 @@ every output edge to the clock cycle, and the status at the end of the run. It w
 event by event (strobes, rate changes, arming, pulses), never cycle by cycle, so a run
 of billions of cycles costs only as much as its events. It imports neither Amaranth nor
 the gateware: it is the independent side of every comparison.
+
+Faults (``docs/timing.md``, "Fault injection"): ignore windows and ``no_rest`` change
+what the accumulators hand over; the output faults (silence, stuck, swap, storm) are
+interval operations on a channel's line pulses, one time segment per fault set, and
+cost nothing on a channel that never has one.
 """
 
 from __future__ import annotations
 
-from bisect import bisect_right
+from bisect import bisect_left, bisect_right
 from dataclasses import dataclass, field
 
 from dvgate.params import EVENT_COUNT_BITS, STROBE_COUNT_BITS, HardwareParams
-from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
+from dvgate.sim.trace import NEG, POS, ChannelState, Edge, Faults, RunResult, Status, Stimulus
 
 _EVENT_MAX = (1 << EVENT_COUNT_BITS) - 1
 _COUNT_MAX = (1 << STROBE_COUNT_BITS) - 1
@@ -58,6 +63,130 @@ def armed_intervals(stim: Stimulus) -> list[tuple[int, int]]:
     if start is not None:
         out.append((start + 1, stim.cycles + 1))
     return [(a, b) for a, b in out if a <= stim.cycles]
+
+
+def ignore_spans(stim: Stimulus) -> list[tuple[int, int]]:
+    """Half-open cycle intervals in which detected strobes are not taken.
+
+    A window ``(c, L)`` covers ``[c, c + L)``, cut short where the next window starts
+    (a new window replaces the one in force).
+    """
+    windows = stim.ignore_windows
+    out = []
+    for index, (cycle, length) in enumerate(windows):
+        stop = cycle + length
+        if index + 1 < len(windows):
+            stop = min(stop, windows[index + 1][0])
+        out.append((cycle, stop))
+    return out
+
+
+def fault_timeline(stim: Stimulus, channel: int) -> list[tuple[int, Faults]]:
+    """The fault sets of ``channel`` with the cycle each takes effect, from ``(0, Faults())``.
+
+    Changes after cycle N are left out: they act on nothing the run observes.
+    """
+    out = [(0, Faults())]
+    for change in stim.fault_changes:
+        if change.channel == channel and change.cycle <= stim.cycles:
+            out.append((change.cycle, change.faults))
+    return out
+
+
+def _member(starts: list[int], spans: list[tuple[int, int]], cycle: int) -> bool:
+    """``cycle`` lies in one of the sorted disjoint ``spans`` (``starts`` their starts)."""
+    i = bisect_right(starts, cycle) - 1
+    return i >= 0 and cycle < spans[i][1]
+
+
+def _clip(rises: list[int], falls: list[int], lo: int, hi: int) -> list[tuple[int, int]]:
+    """The sorted disjoint intervals ``(rises[i], falls[i])`` cut to ``[lo, hi)``."""
+    first, stop = bisect_right(falls, lo), bisect_left(rises, hi)
+    return [(max(rises[i], lo), min(falls[i], hi)) for i in range(first, stop)]
+
+
+def _intersect(a: list[tuple[int, int]], b: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Intersection of two sorted lists of disjoint half-open intervals."""
+    out, i, j = [], 0, 0
+    while i < len(a) and j < len(b):
+        lo, hi = max(a[i][0], b[j][0]), min(a[i][1], b[j][1])
+        if lo < hi:
+            out.append((lo, hi))
+        if a[i][1] < b[j][1]:
+            i += 1
+        else:
+            j += 1
+    return out
+
+
+def _merge(pieces: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Union of intervals as the pulses a line shows: overlapping or touching ones join."""
+    out: list[tuple[int, int]] = []
+    for lo, hi in sorted(pieces):
+        if out and lo <= out[-1][1]:
+            if hi > out[-1][1]:
+                out[-1] = (out[-1][0], hi)
+        else:
+            out.append((lo, hi))
+    return out
+
+
+def _storm(start: int, stop: int, period: int, width: int) -> list[tuple[int, int]]:
+    """Active cycles ``k`` of ``[start, stop)`` with ``(k - start) mod period < width``."""
+    if period == 0:
+        return []
+    if period <= width:
+        return [(start, stop)]  # every cycle: the storm line is held active
+    return [(t, min(t + width, stop)) for t in range(start, stop, period)]
+
+
+def fault_outputs(params: HardwareParams, pulses: list[tuple[int, int, int]], timeline: list[tuple[int, Faults]],
+                  armed: list[tuple[int, int]], cycles: int) -> tuple[list[tuple[int, int]], list[tuple[int, int]]]:
+    """The positive and negative output pulses of a channel under its output faults.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator (the storm's pulse width).
+    pulses : list of (line, rise, fall)
+        The emitter's line pulses, already gated by ``armed``.
+    timeline : list of (cycle, Faults)
+        The channel's fault sets (:func:`fault_timeline`).
+    armed : list of (int, int)
+        Armed intervals (:func:`armed_intervals`).
+    cycles : int
+        Run length N; the outputs are observed for cycles ``1 .. N``.
+
+    Returns
+    -------
+    tuple of two lists of (rise, fall)
+        Merged pulses of the positive and the negative output, cut at ``N + 1``.
+    """
+    end = cycles + 1
+    lines: tuple[tuple[list[int], list[int]], ...] = (([], []), ([], []))
+    for line, rise, fall in pulses:
+        if rise < end:
+            lines[line][0].append(rise)
+            lines[line][1].append(min(fall, end))
+    arm = [(a, min(b, end)) for a, b in armed if a < end]
+    pieces: tuple[list[tuple[int, int]], list[tuple[int, int]]] = ([], [])
+    for index, (start, faults) in enumerate(timeline):
+        stop = timeline[index + 1][0] if index + 1 < len(timeline) else end
+        if stop <= start:
+            continue
+        armed_here = _intersect(arm, [(start, stop)])
+        storm = _intersect(_storm(start, stop, faults.storm_period, params.width_cyc), armed_here)
+        for out, own, stuck, silence, stormy in (
+            (POS, NEG if faults.swap else POS, faults.stuck_pos, faults.silence_pos, not faults.storm_neg),
+            (NEG, POS if faults.swap else NEG, faults.stuck_neg, faults.silence_neg, faults.storm_neg),
+        ):
+            if stuck:
+                pieces[out].extend(armed_here)
+            elif not silence:
+                pieces[out].extend(_clip(*lines[own], start, stop))
+                if stormy:
+                    pieces[out].extend(storm)
+    return _merge(pieces[POS]), _merge(pieces[NEG])
 
 
 @dataclass
@@ -144,8 +273,11 @@ def _advance(acc: int, rate: int, length: int, lo: int, hi: int) -> tuple[int, i
     return lo, safe
 
 
-def _ask(params: HardwareParams, owed: int) -> tuple[int, int, int, bool]:
-    """What a taken strobe asks for: net count, new positive and negative pulses, clamp."""
+def _ask(params: HardwareParams, owed: int, rest: int) -> tuple[int, int, int, bool]:
+    """What a taken strobe asks for: net count, new positive and negative pulses, clamp.
+
+    ``rest`` is the rest pulses per line of this hand-over (0 under the ``no_rest`` fault).
+    """
     one = 1 << params.frac_bits
     if params.scheme == "binary":
         n = 1 if owed >= 0 else -1
@@ -155,7 +287,7 @@ def _ask(params: HardwareParams, owed: int) -> tuple[int, int, int, bool]:
         return n, int(n > 0), int(n < 0), False
     whole = owed >> params.frac_bits if owed >= 0 else -((-owed) >> params.frac_bits)
     n = max(-params.clamp, min(params.clamp, whole))
-    return n, params.rest + max(n, 0), params.rest + max(-n, 0), n != whole
+    return n, rest + max(n, 0), rest + max(-n, 0), n != whole
 
 
 @dataclass
@@ -167,28 +299,38 @@ class ModelRun:
     result : RunResult
         Edges (empty when not recorded), status and books.
     counts : list of (int, int)
-        Pulses seen on each channel's positive and negative line.
+        Pulses seen on each channel's positive and negative output (faults included).
     strobes : list of int
         Cycles at which the detector's ``stb`` was high.
+    ignored : list of int
+        The strobes among them that fell in an ignore window.
     """
 
     result: RunResult
     counts: list[tuple[int, int]]
     strobes: list[int]
+    ignored: list[int] = field(default_factory=list)
 
 
 def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> ModelRun:
-    """Run the model; with ``record=False`` only counts are kept (for very long runs)."""
+    """Run the model; with ``record=False`` only counts are kept (for very long runs).
+
+    A channel with an output fault keeps its pulses anyway: its outputs are computed
+    from them.
+    """
     n_cyc = stim.cycles
     stbs = strobe_cycles(params, stim.strobe_edges, n_cyc)
     armed = armed_intervals(stim)
     arm_starts = [a for a, _ in armed]
+    spans = ignore_spans(stim)
+    span_starts = [a for a, _ in spans]
 
     def is_armed(cycle: int) -> bool:
-        i = bisect_right(arm_starts, cycle) - 1
-        return i >= 0 and cycle < armed[i][1]
+        return _member(arm_starts, armed, cycle)
 
-    takes = [s for s in stbs if is_armed(s)]
+    ignored = [s for s in stbs if _member(span_starts, spans, s)]
+    ignored_set = set(ignored)
+    takes = [s for s in stbs if is_armed(s) and s not in ignored_set]
     lo, hi = params.owed_min, params.owed_max
     one = 1 << params.frac_bits
     busy_at: set[int] = set()
@@ -197,14 +339,19 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
     sat_spans: list[tuple[int, int]] = []
     books: list[ChannelState] = []
     emitters: list[_Emitter] = []
+    timelines: list[list[tuple[int, Faults]]] = []
 
     for ch in range(params.n):
+        timeline = fault_timeline(stim, ch)
+        fault_starts = [c for c, _ in timeline]
+        on_outputs = any(f.on_outputs for _, f in timeline)
+        timelines.append(timeline)
         changes = [(c.cycle, c.rate) for c in stim.rate_changes if c.channel == ch and c.cycle < n_cyc]
         bounds = {a for a, _ in armed} | {b for _, b in armed if b < n_cyc}
         points = sorted({*takes, *(c for c, _ in changes), *bounds})
         change_at = dict(changes)
         take_set = set(takes)
-        emitter = _Emitter(params, ch, record)
+        emitter = _Emitter(params, ch, record or on_outputs)
         acc, rate, k, on = 0, params.rates[ch], 0, False
 
         for point in [*points, n_cyc]:
@@ -227,7 +374,8 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
             if point in take_set:
                 emitter.advance_to(point)
                 busy = emitter.busy(point)
-                n, new_p, new_n, clamped = _ask(params, acc)
+                faults = timeline[bisect_right(fault_starts, point) - 1][1]
+                n, new_p, new_n, clamped = _ask(params, acc, 0 if faults.no_rest else params.rest)
                 if sum(emitter.pend) + new_p + new_n <= params.backlog:
                     if new_p or new_n:
                         emitter.load(point, new_p, new_n)
@@ -251,19 +399,27 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
 
     edges: list[Edge] = []
     counts: list[tuple[int, int]] = []
-    for emitter in emitters:
+    for emitter, timeline in zip(emitters, timelines, strict=True):
+        ch = emitter.channel
+        if any(f.on_outputs for _, f in timeline):
+            outs = fault_outputs(params, emitter.pulses, timeline, armed, n_cyc)
+            counts.append((len(outs[POS]), len(outs[NEG])))
+            if record:
+                edges += [Edge(ch, line, rise, fall if fall <= n_cyc else None)
+                          for line in (POS, NEG) for rise, fall in outs[line]]
+            continue
         counts.append((emitter.counts[POS], emitter.counts[NEG]))
         for line, rise, fall in emitter.pulses:
-            edges.append(Edge(emitter.channel, line, rise, fall if fall <= n_cyc else None))
+            edges.append(Edge(ch, line, rise, fall if fall <= n_cyc else None))
     edges.sort()
 
-    status = _status(params, stbs, n_cyc, busy_at, clamp_at, defer_at, sat_spans)
+    status = _status(params, stbs, n_cyc, busy_at, clamp_at, defer_at, sat_spans, len(ignored))
     result = RunResult(cycles=n_cyc, edges=tuple(edges), status=status, channels=tuple(books))
-    return ModelRun(result=result, counts=counts, strobes=stbs)
+    return ModelRun(result=result, counts=counts, strobes=stbs, ignored=ignored)
 
 
 def _status(params: HardwareParams, stbs: list[int], n_cyc: int, busy_at: set[int], clamp_at: set[int],
-            defer_at: set[int], sat_spans: list[tuple[int, int]]) -> Status:
+            defer_at: set[int], sat_spans: list[tuple[int, int]], ignored: int) -> Status:
     if stbs:
         since = min(n_cyc - 1 - stbs[-1], _COUNT_MAX)
         prev = stbs[-2] if len(stbs) > 1 else -1
@@ -289,6 +445,7 @@ def _status(params: HardwareParams, stbs: list[int], n_cyc: int, busy_at: set[in
         clamps=min(len(clamp_at), _EVENT_MAX),
         deferrals=min(len(defer_at), _EVENT_MAX),
         saturations=min(sat_cycles, _EVENT_MAX),
+        ignored=min(ignored, _EVENT_MAX),
     )
 
 

@@ -15,13 +15,14 @@ from collections import defaultdict
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
-from amaranth.hdl import Module, Signal
+from amaranth.hdl import Module, Signal, Value
 from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
+from dvgate.gateware.faults import pack_faults
 from dvgate.gateware.top import Emulator
 from dvgate.params import HardwareParams
-from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
+from dvgate.sim.trace import IGNORE_CYCLES_BITS, NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
 
 __all__ = ["run_amaranth", "input_plan", "run_cycles"]
 
@@ -42,6 +43,10 @@ def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, in
     Rate changes go through the register port: a group of ``m`` channels changing at
     cycle ``c`` is written at cycles ``c - m .. c - 1`` with the commit on the last.
     A later change of the same channel at the same cycle replaces an earlier one.
+    A fault change at cycle ``c`` is written through the fault port at ``c - 1``, and an
+    ignore window ``(c, L)`` through ``ignore_we``/``ignore_cycles`` at ``c - 1``. The
+    fault and ignore ports appear in the plan only when the stimulus uses them (they are
+    0 at reset); ``fault_data`` is the packed :class:`~dvgate.gateware.faults.FaultLayout`.
 
     Parameters
     ----------
@@ -59,8 +64,9 @@ def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, in
     Raises
     ------
     ValueError
-        If a rate change names a channel or a rate the emulator does not have, or the
-        changes are packed too tightly to write them through the port.
+        If a rate or fault change names a channel or a value the emulator does not have,
+        the rate changes are packed too tightly to write them through the port, or two
+        fault changes (or two ignore windows) need their port at the same cycle.
     """
     n_cyc = stim.cycles
     plan: dict[int, dict[str, int]] = defaultdict(dict)
@@ -110,7 +116,43 @@ def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, in
         after.setdefault("rate_commit", 0)
         free = cycle
 
+    _plan_faults(params, stim, plan)
+    _plan_ignores(stim, plan)
     return {c: plan[c] for c in sorted(plan) if c < n_cyc}
+
+
+def _plan_faults(params: HardwareParams, stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
+    """Fault changes: each written through the fault port on the cycle before it holds."""
+    written: dict[int, int] = {}  # cycle of the write -> channel
+    for change in stim.fault_changes:
+        if not 0 <= change.channel < params.n:
+            raise ValueError(f"fault change at cycle {change.cycle}: channel is {change.channel}, "
+                             f"allowed 0 to {params.n - 1}")
+        if change.cycle > stim.cycles:
+            continue  # takes effect after the last observed cycle
+        at = change.cycle - 1
+        if at in written:
+            raise ValueError(
+                f"fault changes at cycle {change.cycle}: channels {written[at]} and {change.channel} both need "
+                f"the fault port at cycle {at}; a fault set written at c - 1 holds from c, so changes of "
+                "different channels must fall on different cycles")
+        written[at] = change.channel
+        plan[at].update({"fault_addr": change.channel, "fault_data": pack_faults(change.faults), "fault_we": 1})
+        plan[change.cycle].setdefault("fault_we", 0)
+
+
+def _plan_ignores(stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
+    """Ignore windows: each written through ``ignore_we``/``ignore_cycles`` on the cycle before it starts."""
+    limit = (1 << IGNORE_CYCLES_BITS) - 1
+    for cycle, length in stim.ignore_windows:
+        if length > limit:
+            raise ValueError(f"ignore window at cycle {cycle}: length is {length}, allowed 1 to {limit} "
+                             f"({IGNORE_CYCLES_BITS} bits)")
+        if cycle > stim.cycles:
+            continue
+        # Stimulus keeps windows strictly increasing in cycle, so two never share a write cycle.
+        plan[cycle - 1].update({"ignore_we": 1, "ignore_cycles": length})
+        plan[cycle].setdefault("ignore_we", 0)
 
 
 def _edges(changes: list[tuple[int, tuple[int, ...]]], n_lines: int,
@@ -164,7 +206,8 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
     """
     plan_by_name = input_plan(params, stim)  # before building: it may raise
     top = Emulator(params)
-    plan = [(at, [(getattr(top, name), value) for name, value in values.items()])
+    # Value.cast: fault_data is a struct view; the plan holds its packed bits.
+    plan = [(at, [(Value.cast(getattr(top, name)), value) for name, value in values.items()])
             for at, values in plan_by_name.items()]
     n_cyc = stim.cycles
 
@@ -201,6 +244,7 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
             clamps=ctx.get(top.clamps),
             deferrals=ctx.get(top.deferrals),
             saturations=ctx.get(top.saturations),
+            ignored=ctx.get(top.ignored),
         )
         results["channels"] = tuple(
             ChannelState(owed=ctx.get(acc.owed), pend_pos=ctx.get(em.pend_pos),

@@ -11,6 +11,10 @@ from itertools import pairwise
 
 POS, NEG = 0, 1
 LINE_NAMES = ("pos", "neg")
+#: Width of a storm's period in the fault register (``docs/timing.md``, "Fault injection").
+STORM_PERIOD_BITS = 16
+#: Width of the ignore window length written through ``ignore_cycles``.
+IGNORE_CYCLES_BITS = 32
 
 
 @dataclass(frozen=True, order=True)
@@ -45,6 +49,58 @@ class RateChange:
 
 
 @dataclass(frozen=True)
+class Faults:
+    """The fault set of one channel (``docs/timing.md``, "Fault injection"); all off by default.
+
+    Attributes
+    ----------
+    silence_pos, silence_neg : bool
+        The output line stays idle.
+    stuck_pos, stuck_neg : bool
+        The output line is held active (while armed).
+    swap : bool
+        The positive output shows the negative line and the other way round.
+    no_rest : bool
+        Hand-overs add no rest pulses (burst).
+    storm_period : int
+        ``P``: extra pulses active during the first ``width_cyc`` cycles of every ``P``
+        cycles, counted from the cycle this set took effect; 0 is off.
+    storm_neg : bool
+        The storm goes on the negative output line instead of the positive one.
+    """
+
+    silence_pos: bool = False
+    silence_neg: bool = False
+    stuck_pos: bool = False
+    stuck_neg: bool = False
+    swap: bool = False
+    no_rest: bool = False
+    storm_period: int = 0
+    storm_neg: bool = False
+
+    def __post_init__(self) -> None:
+        limit = (1 << STORM_PERIOD_BITS) - 1
+        if not isinstance(self.storm_period, int) or not 0 <= self.storm_period <= limit:
+            raise ValueError(f"storm_period must be an integer from 0 (off) to {limit} cycles, "
+                             f"not {self.storm_period!r}")
+
+    @property
+    def on_outputs(self) -> bool:
+        """True when a fault acts between the emitter's lines and the pins."""
+        return (self.silence_pos or self.silence_neg or self.stuck_pos or self.stuck_neg or self.swap
+                or self.storm_period != 0)
+
+
+@dataclass(frozen=True)
+class FaultChange:
+    """``channel`` has the fault set ``faults`` (the whole set) from ``cycle`` on."""
+
+    cycle: int
+    channel: int
+    faults: Faults
+
+
+@dataclass(frozen=True)
 class Stimulus:
     """Everything driven into the emulator during a run.
 
@@ -58,12 +114,20 @@ class Stimulus:
         Sorted by cycle; each at cycle 1 or later.
     arm_changes : tuple of (int, bool)
         ``arm`` input level from that cycle on; the input is low at reset.
+    fault_changes : tuple of FaultChange
+        Sorted by cycle; each at cycle 1 or later; at most one per channel and cycle.
+    ignore_windows : tuple of (int, int)
+        ``(cycle, length)``: strobes detected at ``cycle .. cycle + length - 1`` are not
+        taken; a window replaces the one in force. Strictly increasing in cycle, each at
+        cycle 1 or later, length 1 or more.
     """
 
     cycles: int
     strobe_edges: tuple[int, ...] = ()
     rate_changes: tuple[RateChange, ...] = ()
     arm_changes: tuple[tuple[int, bool], ...] = ((0, True),)
+    fault_changes: tuple[FaultChange, ...] = ()
+    ignore_windows: tuple[tuple[int, int], ...] = ()
 
     def __post_init__(self) -> None:
         if self.cycles < 1:
@@ -83,6 +147,24 @@ class Stimulus:
             raise ValueError(f"arm change at cycle {arm[0]}: cycles start at 0")
         if any(b <= a for a, b in pairwise(arm)):
             raise ValueError("arm_changes must be strictly increasing in cycle")
+        fault = [c.cycle for c in self.fault_changes]
+        if fault != sorted(fault):
+            raise ValueError("fault_changes must be sorted by cycle")
+        if fault and fault[0] < 1:
+            raise ValueError(f"fault change at cycle {fault[0]}: changes start at cycle 1")
+        seen = [(c.cycle, c.channel) for c in self.fault_changes]
+        if len(set(seen)) != len(seen):
+            cycle, channel = next(x for x in seen if seen.count(x) > 1)
+            raise ValueError(f"fault changes at cycle {cycle}: channel {channel} is set twice; "
+                             "give one fault set per channel and cycle")
+        windows = self.ignore_windows
+        if any(b[0] <= a[0] for a, b in pairwise(windows)):
+            raise ValueError("ignore_windows must be strictly increasing in cycle")
+        if windows and windows[0][0] < 1:
+            raise ValueError(f"ignore window at cycle {windows[0][0]}: windows start at cycle 1")
+        for cycle, length in windows:
+            if length < 1:
+                raise ValueError(f"ignore window at cycle {cycle}: length is {length}, allowed 1 or more")
 
 
 @dataclass(frozen=True)
@@ -100,6 +182,8 @@ class Status:
     clamps: int
     deferrals: int
     saturations: int
+    #: Strobes detected inside an ignore window, armed or not (16 bits, saturating).
+    ignored: int = 0
 
 
 @dataclass(frozen=True)

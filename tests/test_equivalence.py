@@ -1,7 +1,8 @@
 """The Amaranth simulation of the gateware against the reference model, exactly.
 
-Every case ends with the conservation check on both results. A failing case writes a
-VCD of the simulation next to the test's temporary folder and names it.
+Every case ends with the conservation check on both results (skipped by the check itself
+when a stimulus sets an output fault). A failing case writes a VCD of the simulation next
+to the test's temporary folder and names it.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from dvgate.sim.books import conservation_errors
 from dvgate.sim.model import run_model
 from dvgate.sim.stimulus import periodic_strobe_edges
 from dvgate.sim.testbench import run_amaranth
-from dvgate.sim.trace import RateChange, Stimulus
+from dvgate.sim.trace import FaultChange, Faults, RateChange, Stimulus
 from dvgate.simulate import compare_results
 
 
@@ -196,8 +197,22 @@ def cases(draw):
     arms = [(0, True)]
     for c in sorted(draw(st.sets(st.integers(1, cycles - 1), max_size=3))):
         arms.append((c, not arms[-1][1]))
+    # Faults: one port write per cycle, so distinct cycles (up to N: a change at N shows at N).
+    faults = tuple(FaultChange(c, draw(st.integers(0, n - 1)), draw(fault_sets()))
+                   for c in sorted(draw(st.sets(st.integers(1, cycles), max_size=3))))
+    windows = tuple((c, draw(st.integers(1, 80)))
+                    for c in sorted(draw(st.sets(st.integers(1, cycles), max_size=2))))
     return params, Stimulus(cycles=cycles, strobe_edges=tuple(edges), rate_changes=tuple(changes),
-                            arm_changes=tuple(arms))
+                            arm_changes=tuple(arms), fault_changes=faults, ignore_windows=windows)
+
+
+@st.composite
+def fault_sets(draw):
+    """A channel's fault set: each fault now and then, a storm of any period (the width included)."""
+    flag = st.sampled_from([False, False, False, True])  # each output fault about one time in four
+    return Faults(silence_pos=draw(flag), silence_neg=draw(flag), stuck_pos=draw(flag), stuck_neg=draw(flag),
+                  swap=draw(flag), no_rest=draw(st.booleans()),
+                  storm_period=draw(st.one_of(st.just(0), st.integers(1, 12))), storm_neg=draw(st.booleans()))
 
 
 @settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow])
