@@ -19,8 +19,12 @@ ORDERS = ("interleaved", "grouped")
 
 #: Width of the strobe counter, the strobe period and the since-last-strobe timer.
 STROBE_COUNT_BITS = 32
-#: Width of the saturating event counters (overruns, clamps, deferrals, saturations).
+#: Width of the saturating event counters (overruns, clamps, deferrals, saturations, ignored).
 EVENT_COUNT_BITS = 16
+#: Width of a fault set's storm period, in cycles.
+STORM_PERIOD_BITS = 16
+#: Width of the ignore-strobes window, in cycles.
+IGNORE_CYCLES_BITS = 32
 
 
 @dataclass(frozen=True)

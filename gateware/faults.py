@@ -7,8 +7,8 @@ from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import data, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.params import HardwareParams
-from dvgate.sim.trace import STORM_PERIOD_BITS, Faults
+from dvgate.params import STORM_PERIOD_BITS, HardwareParams
+from dvgate.sim.trace import Faults
 
 
 # No ``from __future__ import annotations`` here: a data.Struct reads its annotations as shapes.

@@ -18,8 +18,7 @@ from dvgate.gateware.emitter import PulseEmitter
 from dvgate.gateware.faults import FaultLayout, FaultStage
 from dvgate.gateware.rates import RateRegisters, addr_bits
 from dvgate.gateware.strobe import StrobeDetector
-from dvgate.params import EVENT_COUNT_BITS, STROBE_COUNT_BITS, HardwareParams
-from dvgate.sim.trace import IGNORE_CYCLES_BITS
+from dvgate.params import EVENT_COUNT_BITS, IGNORE_CYCLES_BITS, STROBE_COUNT_BITS, HardwareParams
 
 _EVENT_MAX = (1 << EVENT_COUNT_BITS) - 1
 #: A channel name must make valid port names (``<name>_pos``).

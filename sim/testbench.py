@@ -21,8 +21,8 @@ from amaranth.sim import Simulator
 
 from dvgate.gateware.faults import pack_faults
 from dvgate.gateware.top import Emulator
-from dvgate.params import HardwareParams
-from dvgate.sim.trace import IGNORE_CYCLES_BITS, NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
+from dvgate.params import IGNORE_CYCLES_BITS, HardwareParams
+from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
 
 __all__ = ["run_amaranth", "input_plan", "run_cycles"]
 

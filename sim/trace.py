@@ -9,12 +9,10 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from itertools import pairwise
 
+from dvgate.params import STORM_PERIOD_BITS
+
 POS, NEG = 0, 1
 LINE_NAMES = ("pos", "neg")
-#: Width of a storm's period in the fault register (``docs/timing.md``, "Fault injection").
-STORM_PERIOD_BITS = 16
-#: Width of the ignore window length written through ``ignore_cycles``.
-IGNORE_CYCLES_BITS = 32
 
 
 @dataclass(frozen=True, order=True)
