@@ -30,6 +30,8 @@ FLAG = 0x7E
 #: Escape byte: the next byte is sent XOR :data:`ESC_XOR`.
 ESC = 0x7D
 ESC_XOR = 0x20
+#: Byte the board sends after a reply to give every reply the same length.
+FILLER = 0xFF
 #: Bits per byte on the wire: one start, eight data, one stop (8N1).
 BITS_PER_BYTE = 10
 #: Fewest clock cycles per bit the receiver can sample in the middle of.
@@ -201,18 +203,22 @@ class LinkParams:
         return self.zero_cyc + 1 + self.stage_cyc
 
     @property
-    def reply_bytes_max(self) -> int:
-        """Most bytes a telemetry reply takes on the wire (every byte escaped)."""
+    def reply_bytes(self) -> int:
+        """Bytes of every telemetry reply on the wire: the longest stuffed frame, padded.
+
+        The board follows each reply with :data:`FILLER` bytes up to this length, so a
+        reply takes the same time whatever its escapes.
+        """
         return 1 + 2 * (self.payload_len(FrameType.TELEMETRY_REPLY) + 4)
 
     @property
     def reply_busy_cyc(self) -> int:
         """Cycles after a telemetry request is applied during which another one is refused.
 
-        Long enough for the longest reply to leave the transmitter, so the busy time does
-        not depend on what the reply holds.
+        The padded reply's time on the wire and a little more: a host that waits for the
+        whole reply (filler included) before asking again is never refused.
         """
-        return self.reply_bytes_max * self.byte_cyc + 8
+        return self.reply_bytes * self.byte_cyc + 8
 
     @property
     def byte_cyc(self) -> int:
@@ -288,6 +294,11 @@ def bit_cycles(clock_hz: float, baud: int) -> int:
     return max(1, round(clock_hz / baud))
 
 
+def link_settings(cfg: Config) -> LinkSettings:
+    """The config's ``[link]`` section, validated (defaults when absent)."""
+    return section(cfg, "link", LinkSettings)
+
+
 def link_params(cfg: Config) -> LinkParams:
     """Validate the config's ``[link]`` section and derive the link's integers.
 
@@ -296,7 +307,7 @@ def link_params(cfg: Config) -> LinkParams:
     UserError
         Naming the field, the value and what is allowed.
     """
-    settings = section(cfg, "link", LinkSettings)
+    settings = link_settings(cfg)
     clock = cfg.clock_hz
     bit_cyc = bit_cycles(clock, settings.baud)
     if bit_cyc < MIN_BIT_CYC:

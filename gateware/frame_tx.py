@@ -7,7 +7,7 @@ from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import crc, stream, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.linkspec import ESC, ESC_XOR, FLAG
+from dvgate.linkspec import ESC, ESC_XOR, FILLER, FLAG
 
 
 class FrameEncoder(wiring.Component):
@@ -17,10 +17,17 @@ class FrameEncoder(wiring.Component):
     payload byte it needs on ``idx`` and reads ``data`` in the same cycle (the parent
     muxes it from a snapshot that stays still until ``busy`` falls).
 
+    With ``pad_to``, the frame is followed by filler bytes (:data:`FILLER`, outside any
+    frame) until ``pad_to`` bytes have been sent in all, so every frame takes the same
+    time on the wire whatever its escapes.
+
     Parameters
     ----------
     max_len : int
         Longest payload (1 to 255).
+    pad_to : int, optional
+        Bytes to send per frame, filler included (at least the longest stuffed frame,
+        ``1 + 2 * (max_len + 4)``).
 
     Attributes
     ----------
@@ -38,10 +45,13 @@ class FrameEncoder(wiring.Component):
         A frame is being sent.
     """
 
-    def __init__(self, max_len: int) -> None:
+    def __init__(self, max_len: int, pad_to: int | None = None) -> None:
         if not 1 <= max_len <= 255:
             raise ValueError(f"max_len must be 1 to 255, not {max_len!r}")
+        if pad_to is not None and pad_to < 1 + 2 * (max_len + 4):
+            raise ValueError(f"pad_to must be at least {1 + 2 * (max_len + 4)} bytes, not {pad_to!r}")
         self._max_len = max_len
+        self._pad_to = pad_to
         super().__init__({
             "start": In(1),
             "type": In(8),
@@ -58,6 +68,7 @@ class FrameEncoder(wiring.Component):
 
         ftype   = Signal(8)
         length  = Signal(8)
+        count   = Signal(range(max(self._pad_to or 0, 1 + 2 * (self._max_len + 4)) + 1))
         j       = Signal(9)
         escaped = Signal()
         value   = Signal(8)
@@ -80,10 +91,13 @@ class FrameEncoder(wiring.Component):
             m.d.comb += value.eq(self.data)
 
         sent = self.o.valid & self.o.ready
+        with m.If(sent):
+            m.d.sync += count.eq(count + 1)
         with m.FSM():
             with m.State("IDLE"):
                 with m.If(self.start):
-                    m.d.sync += [ftype.eq(self.type), length.eq(self.length), j.eq(0), escaped.eq(0)]
+                    m.d.sync += [ftype.eq(self.type), length.eq(self.length), j.eq(0), escaped.eq(0),
+                                 count.eq(0)]
                     m.d.comb += gen.start.eq(1)
                     m.next = "FLAG"
             with m.State("FLAG"):
@@ -103,5 +117,11 @@ class FrameEncoder(wiring.Component):
                         m.d.sync += [escaped.eq(0), j.eq(j + 1)]
                         m.d.comb += gen.valid.eq(j < length + 2)
                         with m.If(j == length + 3):
-                            m.next = "IDLE"
+                            m.next = "PAD" if self._pad_to is not None else "IDLE"
+            if self._pad_to is not None:
+                with m.State("PAD"):
+                    done = count == self._pad_to
+                    m.d.comb += [self.busy.eq(~done), self.o.valid.eq(~done), self.o.payload.eq(FILLER)]
+                    with m.If(done):
+                        m.next = "IDLE"
         return m

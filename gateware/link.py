@@ -98,7 +98,7 @@ class HostLink(wiring.Component):
             "reject_stb": Out(1),
         })
         self.decoder = FrameDecoder(board_lengths(link), link.timeout_cyc)
-        self.encoder = FrameEncoder(link.payload_len(FrameType.TELEMETRY_REPLY))
+        self.encoder = FrameEncoder(link.payload_len(FrameType.TELEMETRY_REPLY), pad_to=link.reply_bytes)
 
     def elaborate(self, platform) -> Module:
         m = Module()

@@ -32,7 +32,7 @@ from dvgate.sim.link_model import (
     encode_telemetry_request,
 )
 
-MUTATIONS = ("clean", "flip", "truncate", "timeout", "repeat", "drop", "garbage")
+MUTATIONS = ("clean", "flip", "truncate", "timeout", "repeat", "drop", "garbage", "line")
 
 
 @dataclass(frozen=True)
@@ -59,7 +59,7 @@ class FuzzSettings:
     segments: int = 200
     weights: dict[str, float] = field(default_factory=lambda: {
         "clean": 6.0, "flip": 1.5, "truncate": 0.7, "timeout": 0.3, "repeat": 0.8, "drop": 0.4,
-        "garbage": 0.6})
+        "garbage": 0.6, "line": 0.3})
     spacing: int = 2
     burst: int = 8
     telemetry: float = 0.05
@@ -68,7 +68,11 @@ class FuzzSettings:
 
 @dataclass
 class Instance:
-    """One transmission of a frame: its byte span on the line and what was done to it."""
+    """One transmission of a frame: its byte span on the line and what was done to it.
+
+    ``mutation`` is one of :data:`MUTATIONS`, ``"repeated"`` for the second copy of a
+    repeated frame, or ``"junk"`` for a run of stray bytes (not a frame).
+    """
 
     first: int
     last: int
@@ -91,11 +95,12 @@ class FuzzResult:
 
     @property
     def frames_sent(self) -> int:
-        return len(self.instances)
+        """Frame transmissions (stray byte runs not counted), lost ones included."""
+        return sum(1 for i in self.instances if i.mutation != "junk")
 
     @property
     def frames_arrived(self) -> int:
-        return sum(1 for i in self.instances if i.arrived)
+        return sum(1 for i in self.instances if i.arrived and i.mutation != "junk")
 
 
 def _random_segment(rng: random.Random, link: LinkParams, max_duration: int, last: bool) -> Segment:
@@ -156,14 +161,15 @@ def generate(link: LinkParams, settings: FuzzSettings, seed: int, first: int = 2
     stalled = 0
     gap_long = link.timeout_cyc + 2
 
-    def send(data: bytes, pause_at: int | None = None) -> tuple[int, int]:
+    def send(data: bytes, pause_at: int | None = None, bad_stop: int | None = None) -> tuple[int, int]:
         nonlocal t
         first = len(arrivals)
         for k, byte in enumerate(data):
             if k == pause_at:
                 t += gap_long
-            arrivals.append((t, byte, 0))
-            model.feed(byte, t)
+            error = int(k == bad_stop)
+            arrivals.append((t, byte, error))
+            model.feed(byte, t, bool(error))
             t += settings.spacing
         return first, len(arrivals) - 1
 
@@ -188,8 +194,10 @@ def generate(link: LinkParams, settings: FuzzSettings, seed: int, first: int = 2
                 instances.append(Instance(first, last, junk, "junk"))
                 mutation = "clean"
             data = frame
-            pause = None
-            if mutation == "flip":
+            pause = bad_stop = None
+            if mutation == "line":
+                bad_stop = rng.randrange(len(frame))
+            elif mutation == "flip":
                 buf = bytearray(frame)
                 for _ in range(rng.randint(1, 3)):
                     pos = rng.randrange(len(buf) * 8)
@@ -199,7 +207,7 @@ def generate(link: LinkParams, settings: FuzzSettings, seed: int, first: int = 2
                 data = frame[: rng.randint(1, len(frame) - 1)]
             elif mutation == "timeout":
                 pause = rng.randint(1, len(frame) - 1)
-            first, last = send(data, pause)
+            first, last = send(data, pause, bad_stop)
             instances.append(Instance(first, last, frame, mutation))
             if mutation == "repeat":
                 first, last = send(frame)

@@ -18,7 +18,7 @@ from dvgate.errors import UserError
 from dvgate.gateware.frame_rx import FrameDecoder as FrameDecoderHw
 from dvgate.gateware.frame_tx import FrameEncoder
 from dvgate.gateware.linked_top import write_linked_verilog
-from dvgate.linkspec import ESC, FLAG, FrameType, LinkParams, PlayState, Reason, board_lengths, link_params
+from dvgate.linkspec import ESC, FILLER, FLAG, FrameType, LinkParams, PlayState, Reason, board_lengths, link_params
 from dvgate.sim.link_bench import run_link_bytes, run_linked
 from dvgate.sim.link_model import (
     Frame,
@@ -173,8 +173,8 @@ def test_link_params_checked():
 
 # -- encoder and decoder gateware -----------------------------------------------------------
 
-def run_encoder(ftype: int, payload: bytes) -> bytes:
-    dut = FrameEncoder(255)
+def run_encoder(ftype: int, payload: bytes, pad_to: int | None = None) -> bytes:
+    dut = FrameEncoder(255 if pad_to is None else len(payload), pad_to)
     out = bytearray()
 
     async def bench(ctx):
@@ -184,7 +184,7 @@ def run_encoder(ftype: int, payload: bytes) -> bytes:
         ctx.set(dut.o.ready, 1)
         await ctx.tick()
         ctx.set(dut.start, 0)
-        for cycle in range(3 * len(payload) + 20):
+        for cycle in range(3 * (pad_to or 2 * len(payload)) + 30):
             idx = ctx.get(dut.idx)
             ctx.set(dut.data, payload[idx] if idx < len(payload) else 0)
             # Stall every third cycle: the encoder must hold its byte until taken.
@@ -208,6 +208,18 @@ def run_encoder(ftype: int, payload: bytes) -> bytes:
 def test_encoder_gateware_sends_what_python_encodes(ftype, payload):
     payload = bytes(payload)
     assert run_encoder(ftype, payload) == encode_frame(ftype, payload)
+
+
+def test_encoder_pads_every_frame_to_the_same_length():
+    plain, special = bytes(range(1, 9)), bytes((FLAG,) * 8)
+    pad = 1 + 2 * (8 + 4)
+    for payload in (plain, special):
+        sent = run_encoder(0x85, payload, pad_to=pad)
+        frame = encode_frame(0x85, payload)
+        assert len(sent) == pad and sent[:len(frame)] == frame
+        assert set(sent[len(frame):]) <= {FILLER}
+    with pytest.raises(ValueError, match="pad_to must be at least 25 bytes, not 24"):
+        FrameEncoder(8, 24)
 
 
 def run_decoder(lengths: dict[int, int], timeout: int, feed: list[tuple[int, int, int]], cycles: int):
@@ -328,11 +340,16 @@ def assert_link_equal(link: LinkParams, feed, cycles):
     assert status["rejected"] == model.counters.rejected
     assert status["underruns"] == model.player.underruns
     assert status["played"] == model.player.played
-    # Each reply: a good frame whose link fields are what the model says they were.
+    # Each reply: a good frame, padded with filler to the fixed reply length, whose link
+    # fields are what the model says they were.
     assert len(run.replies) == len(model.replies)
-    decoder = FrameDecoder(host_lengths(link))
-    frames = [e for reply in run.replies for b in reply for e in decoder.feed(b)]
-    assert all(isinstance(f, Frame) for f in frames) and len(frames) == len(model.replies)
+    frames = []
+    for reply in run.replies:
+        decoder = FrameDecoder(host_lengths(link))
+        events = [e for b in reply for e in decoder.feed(b)]
+        assert isinstance(events[0], Frame) and len(reply) == link.reply_bytes
+        assert set(reply[events[0].last + 1:]) <= {FILLER}
+        frames.append(events[0])
     for frame, (_, fields) in zip(frames, model.replies, strict=True):
         tm = parse_telemetry(frame.payload, link)
         assert tm.next_seq == fields["next_seq"] and tm.accepted == fields["accepted"]
@@ -422,7 +439,7 @@ def test_linked_top_outputs_equal_the_model(policy, late):
     assert model.player.underruns == (1 if late else 0) and run.status["underruns"] == model.player.underruns
     # Telemetry: decoded replies with the link's fields and the emulator's books.
     decoder = FrameDecoder(host_lengths(link))
-    replies = [parse_telemetry(e.payload, link) for _, b in run.tx for e in decoder.feed(b)]
+    replies = [parse_telemetry(e.payload, link) for _, b in run.tx for e in decoder.feed(b) if isinstance(e, Frame)]
     assert [t.channel for t in replies] == [0, 1]
     for tm, (cycle, fields) in zip(replies, model.replies, strict=True):
         assert tm.next_seq == fields["next_seq"] == 4 and tm.played == fields["played"]

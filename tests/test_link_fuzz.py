@@ -135,5 +135,5 @@ def test_model_fuzz_many_frames(policy):
             counted[reason] += count
     assert sent > 8000
     # The line was hostile: every kind of damage the decoder can see was seen.
-    for reason in (Reason.CRC, Reason.TRUNCATED, Reason.FORMAT, Reason.NOISE, Reason.SEQUENCE):
+    for reason in (Reason.CRC, Reason.TRUNCATED, Reason.FORMAT, Reason.NOISE, Reason.LINE, Reason.SEQUENCE):
         assert counted[reason] > 0, reason

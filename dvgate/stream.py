@@ -1,0 +1,405 @@
+"""Play a pulse program to a board over its serial link, and check what it emitted.
+
+The streamer speaks the frame protocol of ``docs/link.md`` through any port object with
+``read(size)`` and ``write(data)`` (a ``serial.Serial``, or the simulated board's
+pseudo-terminal opened the same way). It:
+
+1. reads the board's next sequence number and disarms it (which clears its books);
+2. reads each channel's pulse counters as a baseline;
+3. sends segments while the FIFO has room, then START, and keeps the FIFO ahead of
+   playback by reading the telemetry; a frame the board did not apply (its sequence
+   number shows it) is sent again, so every segment is applied exactly once;
+4. after the last segment (flagged ``last``: the rates go to zero) waits for the owed
+   pulses to come out, then reads every channel and checks the books exactly:
+   ``2**F * (net pulses emitted + net pending) + owed == the program's integral``.
+
+A port that fails mid-stream (the cable pulled, the board gone) raises
+:class:`LinkLost` with a message saying so; the board then plays its underrun policy.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Protocol
+
+from dvgate.errors import UserError
+from dvgate.linkspec import SEQ_BITS, FrameType, LinkParams, PlayState, Reason, host_lengths
+from dvgate.sim.link_model import (
+    Frame,
+    FrameDecoder,
+    Segment,
+    Telemetry,
+    asked,
+    encode_command,
+    encode_segment,
+    encode_telemetry_request,
+    fit_segments,
+    parse_telemetry,
+)
+
+_SEQ_MOD = 1 << SEQ_BITS
+_COUNT_MOD = 1 << 32
+
+
+class Port(Protocol):
+    """What the streamer needs of a serial port."""
+
+    def read(self, size: int = 1) -> bytes: ...
+
+    def write(self, data: bytes) -> int | None: ...
+
+
+class LinkLost(Exception):
+    """The serial link failed mid-stream; the message says what happened and where."""
+
+
+@dataclass(frozen=True)
+class ChannelCheck:
+    """One channel's books at the end of a stream.
+
+    Attributes
+    ----------
+    name : str
+        Channel name.
+    asked : int
+        The program's integral, fixed point (pulses x ``2**frac_bits``).
+    pos, neg : int
+        Pulses the board started on each line during the stream.
+    pend_pos, pend_neg : int
+        Pulses still waiting in the emitter.
+    owed : int
+        The owed amount, fixed point.
+    frac_bits : int
+        Fraction bits of ``asked`` and ``owed``.
+    """
+
+    name: str
+    asked: int
+    pos: int
+    neg: int
+    pend_pos: int
+    pend_neg: int
+    owed: int
+    frac_bits: int
+
+    @property
+    def net(self) -> int:
+        """Net pulses emitted (positive minus negative)."""
+        return self.pos - self.neg
+
+    @property
+    def accounted(self) -> int:
+        """Emitted, pending and owed together, fixed point."""
+        return ((self.net + self.pend_pos - self.pend_neg) << self.frac_bits) + self.owed
+
+    @property
+    def exact(self) -> bool:
+        """The board emitted exactly what the program asked for (the rest still owed)."""
+        return self.accounted == self.asked
+
+    @property
+    def asked_pulses(self) -> float:
+        return self.asked / (1 << self.frac_bits)
+
+    @property
+    def owed_pulses(self) -> float:
+        return self.owed / (1 << self.frac_bits)
+
+
+@dataclass
+class StreamReport:
+    """What a stream did and whether the board's counts match the program."""
+
+    segments: int
+    refits: int
+    frames_sent: int = 0
+    frames_resent: int = 0
+    telemetry_reads: int = 0
+    underruns: int = 0
+    rejected: dict[Reason, int] = field(default_factory=dict)
+    channels: list[ChannelCheck] = field(default_factory=list)
+    flags: dict[str, bool] = field(default_factory=dict)
+    strobes: int = 0
+    seconds: float = 0.0
+    policy: str = "rest"
+
+    @property
+    def ok(self) -> bool:
+        """Every channel's books balance exactly."""
+        return bool(self.channels) and all(c.exact for c in self.channels)
+
+    def problems(self) -> list[str]:
+        """Why the check failed, in words."""
+        out = []
+        for c in self.channels:
+            if not c.exact:
+                diff = (c.accounted - c.asked) / (1 << c.frac_bits)
+                out.append(f"channel {c.name}: the board accounts for {diff:+.6g} pulses more than the program asked")
+        if self.underruns and self.policy == "hold":
+            out.append(f"{self.underruns} underrun(s): the board held the last rates while it waited for segments "
+                       "(feed it faster: a higher baud rate, or longer segments)")
+        if self.flags.get("saturated"):
+            out.append("the owed amount saturated on the board: the books cannot balance")
+        return out
+
+
+class BoardClient:
+    """Frames to and from one board: commands with sequence numbers, telemetry requests.
+
+    Parameters
+    ----------
+    port : Port
+        The open serial port.
+    link : LinkParams
+        The board's link (payload layouts, busy time).
+    reply_timeout : float
+        Seconds to wait for a telemetry reply before asking again.
+    retries : int
+        Requests before giving up.
+    """
+
+    def __init__(self, port: Port, link: LinkParams, *, reply_timeout: float, retries: int = 4) -> None:
+        self.port = port
+        self.link = link
+        self.reply_timeout = reply_timeout
+        self.retries = retries
+        self.decoder = FrameDecoder(host_lengths(link))
+        self.reads = 0
+        self.frames_sent = 0
+        self._fed = 0
+        self._drain_until = 0
+
+    def _write(self, data: bytes) -> None:
+        try:
+            self.port.write(data)
+        except Exception as error:  # noqa: BLE001 - pyserial and the OS raise several types
+            raise LinkLost(f"writing to the port failed: {error}") from None
+        self.frames_sent += 1
+
+    def _read(self) -> list[Frame]:
+        """Bytes from the port through the decoder: the replies that ended."""
+        try:
+            data = self.port.read(256)
+        except Exception as error:  # noqa: BLE001
+            raise LinkLost(f"reading from the port failed: {error}") from None
+        frames = []
+        for byte in data:
+            self._fed += 1
+            frames += [e for e in self.decoder.feed(byte) if isinstance(e, Frame)]
+        return frames
+
+    def _drain(self) -> None:
+        """Wait for the filler that follows the last reply: the board is busy until it ends."""
+        deadline = time.monotonic() + self.reply_timeout
+        while self._fed < self._drain_until and time.monotonic() < deadline:
+            self._read()
+
+    def send(self, frame: bytes) -> None:
+        """Send one frame."""
+        self._write(frame)
+
+    def telemetry(self, channel: int = 0) -> Telemetry:
+        """Ask for a telemetry reply about ``channel`` and wait for it (asking again on silence).
+
+        Raises
+        ------
+        LinkLost
+            When the port fails, or no reply comes after every retry.
+        """
+        for _ in range(self.retries):
+            # A request before the last reply's filler has ended would be refused (BUSY).
+            self._drain()
+            self._write(encode_telemetry_request(channel))
+            deadline = time.monotonic() + self.reply_timeout
+            while time.monotonic() < deadline:
+                for frame in self._read():
+                    self._drain_until = frame.first + self.link.reply_bytes
+                    reply = parse_telemetry(frame.payload, self.link)
+                    if reply.channel == channel:
+                        self.reads += 1
+                        return reply
+        raise LinkLost(f"no telemetry reply from the board after {self.retries} requests "
+                       f"of {self.reply_timeout:g} s each")
+
+
+def program_segments(program, link: LinkParams) -> tuple[list[Segment], int]:  # noqa: ANN001 - a Program
+    """A :class:`~dvgate.sim.program.Program` as link segments (short segments refitted)."""
+    try:
+        return fit_segments(list(program.segments()), link)
+    except ValueError as error:
+        raise UserError(f"the program cannot be streamed: {error}") from None
+
+
+def stream(port: Port, link: LinkParams, segments: Sequence[Segment], *,
+           names: Sequence[str], reply_timeout: float = 1.0, window: int | None = None,
+           progress: Callable[[int, int], None] | None = None, settle_timeout: float | None = None,
+           refits: int = 0) -> StreamReport:
+    """Play ``segments`` on the board behind ``port`` and check its books at the end.
+
+    Parameters
+    ----------
+    port : Port
+        The open serial port.
+    link : LinkParams
+        The board's link, as its config says.
+    segments : sequence of Segment
+        The program, the last one flagged ``last``.
+    names : sequence of str
+        Channel names, for the report.
+    reply_timeout : float
+        Seconds to wait for a telemetry reply.
+    window : int, optional
+        Most frames sent ahead of what the board has applied (default: the FIFO depth).
+    progress : callable, optional
+        ``progress(done_cycles, total_cycles)`` as playback advances.
+    settle_timeout : float, optional
+        Seconds to wait after the end for the owed pulses to come out (default: ten
+        reply timeouts).
+    refits : int
+        Short segments refitted (for the report).
+
+    Raises
+    ------
+    LinkLost
+        When the port fails or the board stops answering.
+    """
+    if not segments or not segments[-1].last:
+        raise ValueError("a program ends with a segment flagged last")
+    started = time.monotonic()
+    board = BoardClient(port, link, reply_timeout=reply_timeout)
+    report = StreamReport(segments=len(segments), refits=refits, policy=link.underrun)
+    window = window or link.fifo_depth
+    settle_timeout = settle_timeout if settle_timeout is not None else 10 * reply_timeout
+
+    # 1. Disarm: stops anything playing, drops queued segments, clears the books.
+    tm = board.telemetry(0)
+    base = tm.next_seq
+    _deliver(board, [encode_command(FrameType.DISARM, base)], base)
+    base = (base + 1) % _SEQ_MOD
+    # 2. Baselines of the pulse counters.
+    baseline = [board.telemetry(ch) for ch in range(link.n)]
+    played0 = baseline[0].played
+    # 3. The program: the preload, START, then the rest, each with its sequence number.
+    preload = min(len(segments), link.fifo_depth)
+    items = [encode_segment((base + k) % _SEQ_MOD, seg, link) for k, seg in enumerate(segments[:preload])]
+    items.append(encode_command(FrameType.START, (base + preload) % _SEQ_MOD))
+    items += [encode_segment((base + preload + 1 + k) % _SEQ_MOD, seg, link)
+              for k, seg in enumerate(segments[preload:])]
+    starts = [0]
+    for seg in segments:
+        starts.append(starts[-1] + seg.duration)
+    total = starts[-1]
+    sent = 0          # items sent at least once, in order
+    tm = baseline[-1] if link.n == 1 else board.telemetry(0)
+    while True:
+        applied = (tm.next_seq - base) % _SEQ_MOD
+        if applied > len(items):
+            raise LinkLost(f"the board's sequence number moved to {tm.next_seq}, past what was sent: "
+                           "another host is talking to it")
+        if applied < sent:
+            report.frames_resent += sent - applied
+            sent = applied  # go back: resend from the first frame not applied
+        # Room: what the FIFO had free, less the segments sent since that are not applied yet.
+        room = tm.free - sum(1 for k in range(applied, sent) if not _is_command(k, preload))
+        while sent < len(items) and sent - applied < window and (room > 0 or _is_command(sent, preload)):
+            board.send(items[sent])
+            if not _is_command(sent, preload):
+                room -= 1
+            sent += 1
+        played = (tm.played - played0) % _COUNT_MOD
+        if progress is not None:
+            progress(starts[min(played, len(segments))], total)
+        if applied == len(items) and tm.play == PlayState.IDLE and played >= len(segments):
+            break
+        tm = board.telemetry(0)
+    if progress is not None:
+        progress(total, total)
+    # 4. Let the owed whole pulses out: at least one strobe after the end, nothing pending.
+    end_strobes = tm.strobes
+    deadline = time.monotonic() + settle_timeout
+    final = [board.telemetry(ch) for ch in range(link.n)]
+    while time.monotonic() < deadline:
+        settled = all(t.pend_pos == 0 and t.pend_neg == 0 for t in final)
+        if settled and (final[-1].strobes - end_strobes) % _COUNT_MOD >= 2:
+            break
+        if final[-1].host_absent:
+            break  # no strobes: the books still balance, the owed pulses simply wait
+        final = [board.telemetry(ch) for ch in range(link.n)]
+    want = asked(segments, link.n)
+    for ch in range(link.n):
+        t, b = final[ch], baseline[ch]
+        report.channels.append(ChannelCheck(
+            name=names[ch], asked=want[ch], pos=(t.pos - b.pos) % _COUNT_MOD, neg=(t.neg - b.neg) % _COUNT_MOD,
+            pend_pos=t.pend_pos, pend_neg=t.pend_neg, owed=t.owed, frac_bits=link.hw.frac_bits))
+    last = final[-1]
+    report.underruns = (last.underruns - baseline[0].underruns) % (1 << 16)
+    report.rejected = {r: (last.rejected[r] - baseline[0].rejected[r]) % (1 << 16) for r in Reason}
+    report.flags = last.flags
+    report.strobes = (last.strobes - baseline[0].strobes) % _COUNT_MOD
+    report.frames_sent = board.frames_sent
+    report.telemetry_reads = board.reads
+    report.seconds = time.monotonic() - started
+    return report
+
+
+def _is_command(index: int, preload: int) -> bool:
+    return index == preload
+
+
+def _deliver(board: BoardClient, frames: list[bytes], base: int) -> None:
+    """Send sequenced frames until the board's sequence number shows each applied once."""
+    for _ in range(board.retries):
+        for frame in frames:
+            board.send(frame)
+        tm = board.telemetry(0)
+        if (tm.next_seq - base) % _SEQ_MOD >= len(frames):
+            return
+    raise LinkLost(f"the board did not apply a command after {board.retries} tries")
+
+
+@contextmanager
+def progress_bar(console, clock_hz: float) -> Iterator[Callable[[int, int], None]]:  # noqa: ANN001 - a Console
+    """A progress bar (rich) in program seconds; yields the ``progress`` callback of :func:`stream`."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    columns = (TextColumn("streaming"), BarColumn(), TextColumn("{task.completed:.3f} / {task.total:.3f} s"),
+               TimeElapsedColumn())
+    with Progress(*columns, console=console, transient=False, disable=not console.is_terminal) as bar:
+        task = bar.add_task("stream", total=1.0)
+
+        def update(done: int, total: int) -> None:
+            bar.update(task, completed=done / clock_hz, total=max(total, 1) / clock_hz)
+
+        yield update
+
+
+def open_port(device: str, baud: int):  # noqa: ANN201 - a serial.Serial
+    """Open a serial port with pyserial (8N1, short read timeout)."""
+    import serial
+
+    try:
+        return serial.Serial(device, baudrate=baud, bytesize=8, parity="N", stopbits=1, timeout=0.02)
+    except (serial.SerialException, ValueError, OSError) as error:
+        raise UserError(f"--port {device}: cannot open it: {error}") from None
+
+
+def load_stream_program(path: str | Path, config) -> tuple[list[Segment], int]:  # noqa: ANN001 - a Config
+    """Read a program (``.npz`` from ``dvgate run``) and fit it to the config's link."""
+    from dvgate.linkspec import link_params
+    from dvgate.sim.program import check_program, load_program
+
+    path = Path(path)
+    if path.suffix != ".npz":
+        raise UserError(f"{path}: expected a pulse program (.npz), such as the program.npz "
+                        "`dvgate run` writes in its report folder")
+    program = load_program(path)
+    check_program(program, config)
+    return program_segments(program, link_params(config))
+
+
+__all__ = ["BoardClient", "ChannelCheck", "LinkLost", "StreamReport", "load_stream_program", "open_port",
+           "program_segments", "progress_bar", "stream"]
