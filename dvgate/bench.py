@@ -8,40 +8,46 @@ tables and plots).
 
 Matching rule
 -------------
-Let ``T`` be the emulator's clock period (config), ``Ts`` the analyzer's sample period,
-``J`` the declared timing uncertainty of one captured edge beyond sampling (default 0)
-and ``p`` the clock tolerance (default 100 ppm, for the emulator's and the analyzer's
-oscillators together).
+(``docs/bench.md`` gives it in full.) Let ``T`` be the emulator's clock period (config),
+``Ts`` the analyzer's sample period, ``J`` the declared timing uncertainty of one
+captured edge beyond sampling (default 0) and ``p`` the clock tolerance (default 100 ppm,
+for the emulator's and the analyzer's oscillators together).
 
-1. **Time base.** A capture time ``t`` is the emulator cycle
-   ``c(t) = round((t - t0) / T - phi) + 1``, ``t0`` the capture's first sample and
-   ``phi`` the mean phase of the strobe's edges within a clock period (a circular mean,
-   so a simulated capture, whose edges all sit on the clock grid, converts exactly).
-   The model runs on the strobe's edges, the ``arm`` line (or armed from ``t0`` when the
-   capture has none) and the program's rate changes, all converted this way.
-2. **Predicted times.** A channel's pulses come in bursts, ``W + G`` cycles apart; the
-   first pulse of a burst rises ``L = M + 2`` cycles after the pin edge of the strobe
-   that started it. Every predicted edge at cycle ``k`` is placed at
-   ``t_s + (k - c_s) T``, where ``t_s`` is the captured time of that strobe's edge and
-   ``c_s`` its cycle, so the prediction follows the capture's own clock from strobe to
-   strobe and does not drift over a long capture.
-3. **Window.** A captured rising edge at ``t_c`` matches a predicted one at ``t_p`` on the
-   same line when ``-(T + Ts + 2J + d) <= t_c - t_p <= Ts + 2J + d`` with
-   ``d = p |t_p - t_s|``. Why: the strobe's pin edge happened up to ``Ts`` before the
-   sample that shows it, the emulator registers it at its next clock edge (up to ``T``
-   later), and the output edge is seen up to ``Ts`` after it happens. Predicted and
-   captured pulses are paired in time order, each line on its own; a predicted pulse
-   left without a partner is **missing**, a captured one is **extra**.
+1. **Clock.** The outputs are registered, so every captured output edge sits on the
+   emulator's clock, seen up to ``Ts`` late: :func:`dvgate.clock_recovery.recover_clock`
+   finds the period and phase in the capture's time base (least squares of the rising
+   edges against their integer cycles).
+2. **Strobe cycles.** Each strobe's pin edge may fall in one or two cycles of that
+   clock. It is fixed by its time alone when one is possible; else by the first output
+   edge it caused (a burst on an idle emitter rises ``L = M + 2`` cycles after the pin
+   edge); else, when nothing answered, by the model's fit: of its possible cycles, the
+   one that makes the model agree (both are physically possible). The model runs on
+   those cycles (each taken strobe at least ``M`` cycles long), the ``arm`` line and the
+   program's rate changes, converted on the same clock.
+3. **Window.** A predicted edge of cycle ``k`` is expected at ``a + k P``; a captured
+   rising edge matches it when its deviation lies in the band the clock's edges showed,
+   at most ``2 (Ts + 2J)`` wide, so the match is cycle-exact. Predicted and captured
+   pulses are paired in time order, each line on its own; a predicted pulse left
+   without a partner is **missing**, a captured one is **extra**.
 4. **Lengths.** A matched pulse's width must equal the predicted width within
    ``Ts + 2J + p w`` (both edges come from one clock; each is seen up to ``Ts`` late), or
    it is a **width** discrepancy. The low time between two pulses the model sends back
    to back is held to the same bound (a **gap** discrepancy, unless a width discrepancy
    of either pulse explains it).
-5. **Sampling limit.** Edges are known to one sample period. A pulse or gap narrower
+5. **Clock.** A recovered clock beyond ``p`` (plus three standard errors) of the config's,
+   or output edges on no clock grid near it, is a **clock** discrepancy.
+6. **Sampling limit.** Edges are known to one sample period. A pulse or gap narrower
    than two samples is flagged as unmeasurable (its width is not reported, not
    guessed); a capture whose sample period exceeds half the configured width or gap
    is refused. Pulses before the capture's first strobe, or whose window passes the
    capture's end, are counted as not compared.
+
+Without a recovered clock (``Ts + 2J`` over half a clock period, too few edges, edges on
+no grid, or ``clock_recovery=False``), the nominal time base is used:
+``c(t) = round((t - t0) / T - phi) + 1`` with ``phi`` the strobe edges' circular mean
+phase; predicted edges are placed from the strobe that started their burst,
+``t_s + (k - c_s) T``, in the window ``-(T + Ts + 2J + d) .. Ts + 2J + d`` with
+``d = p |t_p - t_s|``; a strobe's cycle is then known only to within one.
 """
 
 from __future__ import annotations
@@ -58,6 +64,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from dvgate.clock_recovery import ClockGrid, NoClock, recover_clock
 from dvgate.config import Config
 from dvgate.errors import UserError
 from dvgate.params import HardwareParams
@@ -71,8 +78,8 @@ if TYPE_CHECKING:
     from dvgate.sim.program import Program
 
 __all__ = [
-    "BenchReport", "Bounds", "ChannelCheck", "Discrepancy", "RateProgram", "RateStep", "Stats",
-    "check_capture", "load_rate_program", "parse_time", "write_report", "DEFAULT_CLOCK_PPM",
+    "BenchReport", "Bounds", "ChannelCheck", "ClockCheck", "Discrepancy", "FIXED_BY", "RateProgram", "RateStep",
+    "Stats", "check_capture", "load_rate_program", "parse_time", "write_report", "DEFAULT_CLOCK_PPM",
 ]
 
 #: Clock tolerance of the emulator's and the analyzer's oscillators together, ppm. Crystal
@@ -248,10 +255,16 @@ class Bounds:
         """The narrowest pulse or gap measured: two sample periods."""
         return 2 * self.sample_period
 
-    def describe(self) -> str:
+    def describe(self, window: tuple[float, float] | None = None) -> str:
+        """The bound in words; ``window`` is the recovered clock's edge window when there is one."""
+        if window is None:
+            edges = (f"edges within -{format_si(-self.window(0)[0], 's')}/+{format_si(self.window(0)[1], 's')} "
+                     "of the model (from the strobe's captured edge)")
+        else:
+            edges = (f"edges within {format_si(window[0], 's')} to {format_si(window[1], 's')} of their cycle "
+                     "on the recovered clock")
         return (f"edges known to one sample period ({format_si(self.sample_period, 's')}); widths and gaps "
-                f"within +/-{format_si(self.length(0), 's')} (+{self.clock_ppm:g} ppm); edges within "
-                f"-{format_si(-self.window(0)[0], 's')}/+{format_si(self.window(0)[1], 's')} of the model; "
+                f"within +/-{format_si(self.length(0), 's')} (+{self.clock_ppm:g} ppm); {edges}; "
                 f"pulses narrower than {format_si(self.measurable, 's')} are unmeasurable")
 
 
@@ -286,13 +299,17 @@ class Discrepancy:
     ----------
     kind : str
         ``"missing"`` (predicted, not captured), ``"extra"`` (captured, not predicted),
-        ``"width"`` or ``"gap"`` (out of bound).
+        ``"width"`` or ``"gap"`` (out of bound), or ``"clock"`` (the emulator's clock,
+        recovered from the output edges, is beyond the clock tolerance, or the edges sit
+        on no clock grid near the config's).
     channel, line : str
-        Channel name and ``"pos"`` or ``"neg"``.
+        Channel name and ``"pos"`` or ``"neg"`` (empty for ``"clock"``).
     time : float
-        Capture time of the pulse's rising edge (predicted for a missing pulse).
+        Capture time of the pulse's rising edge (predicted for a missing pulse; the
+        capture's start for ``"clock"``).
     predicted, captured : float or None
-        Missing/extra: the rise times; width: the widths; gap: the low times (seconds).
+        Missing/extra: the rise times; width: the widths; gap: the low times (seconds);
+        clock: the config's and the recovered clock (Hz; None when none fits).
     """
 
     kind: str
@@ -303,6 +320,14 @@ class Discrepancy:
     captured: float | None
 
     def text(self) -> str:
+        if self.kind == "clock":
+            assert self.predicted is not None
+            if self.captured is None:
+                return (f"clock: the output edges sit on no clock grid near the config's "
+                        f"{format_si(self.predicted, 'Hz')}: the clock is far off, or edges are off its grid")
+            ppm = (self.captured / self.predicted - 1) * 1e6
+            return (f"clock: {format_si(self.captured, 'Hz', 9)} recovered from the output edges, {ppm:+.1f} ppm "
+                    f"against the config's {format_si(self.predicted, 'Hz')}: beyond the clock tolerance")
         where = f"{self.channel}_{self.line} at {format_si(self.time, 's', 9)}"
         if self.kind == "missing":
             return f"missing: {where}: the model predicts a pulse; none captured in its window"
@@ -384,6 +409,43 @@ class ChannelCheck:
         return self.missing + self.extra + self.width_errors + self.gap_errors
 
 
+@dataclass(frozen=True)
+class ClockCheck:
+    """The emulator's clock as the capture shows it.
+
+    Attributes
+    ----------
+    recovered : bool
+        True when the output edges fixed the clock's phase, and its period where they
+        can (the matching then runs on its grid); False when the nominal time base was
+        used.
+    hz : float or None
+        The emulator's clock in the capture's time base (None when not measured).
+    ppm, ppm_error : float or None
+        Against the config's clock, and its standard error.
+    source : str
+        What measured it: output edges, or the spacing of bursts.
+    reason : str
+        Why the clock was not recovered (empty when it was).
+    window : tuple of float or None
+        Allowed ``captured - grid`` of an output edge, seconds.
+    offset : tuple of float or None
+        Where the clock's edges lie against the grid of seen edges, seconds.
+    outliers : int
+        Output rising edges off the grid.
+    """
+
+    recovered: bool
+    hz: float | None
+    ppm: float | None
+    ppm_error: float | None
+    source: str
+    reason: str
+    window: tuple[float, float] | None
+    offset: tuple[float, float] | None
+    outliers: int
+
+
 @dataclass(frozen=True, eq=False)
 class BenchReport:
     """Everything the bench check found.
@@ -412,8 +474,21 @@ class BenchReport:
     notes : tuple of str
         Everything worth knowing that is not a discrepancy.
     clock_ppm, clock_ppm_error : float or None
-        The emulator's clock against the analyzer's, from the captured spacing of the
-        bursts' pulses (None with fewer than three bursts of two pulses or more).
+        The emulator's clock against the config's in the analyzer's time base: from the
+        recovered clock, or else from the captured spacing of the bursts' pulses (None
+        with fewer than three bursts of two pulses or more).
+    clock : ClockCheck
+        The clock's recovery.
+    strobe_cycles : ndarray of int
+        The cycle of every strobe's pin edge the model was driven with.
+    strobe_options : ndarray of int
+        How many cycles each strobe's captured time allows.
+    strobe_fixed_by : tuple of str
+        How each strobe's cycle was fixed (:data:`FIXED_BY`).
+    resolution : dict of str to int
+        Strobes fixed each way, strobes with several possible cycles (``several``),
+        those the model's fit moved from their nearest cycle (``moved``), and the
+        model runs of the fit (``fit_runs``).
     """
 
     capture: Capture
@@ -432,6 +507,11 @@ class BenchReport:
     model_cycles: int
     clock_ppm: float | None
     clock_ppm_error: float | None
+    clock: ClockCheck
+    strobe_cycles: np.ndarray
+    strobe_options: np.ndarray
+    strobe_fixed_by: tuple[str, ...]
+    resolution: dict[str, int]
     lines: dict[str, Trace] = field(repr=False)
     predicted: dict[str, np.ndarray] = field(repr=False)
     widths_all: np.ndarray = field(repr=False)
@@ -447,7 +527,7 @@ class BenchReport:
         w(f"capture: {cap.kind.upper()}, {format_si(cap.end - cap.start, 's')} from "
           f"{format_si(cap.start, 's')}, {cap.samples} {'rows' if cap.kind == 'csv' else 'time stamps'}; "
           f"sample period {format_si(cap.sample_period, 's')} ({cap.sample_period_from})\n")
-        w(f"sampling bound: {self.bounds.describe()}\n")
+        w(f"sampling bound: {self.bounds.describe(self.clock.window if self.clock.recovered else None)}\n")
         w(f"program: {self.program_source}; model run: {self.model_cycles} cycles\n")
         mapped = ", ".join(f"{role}={'~' if ref.inverted else ''}{self.lines[role].name}"
                            for role, ref in self.signals.items() if role in self.lines)
@@ -456,8 +536,27 @@ class BenchReport:
         w(f"configured: width {format_si(e['width'], 's')}, gap {format_si(e['gap'], 's')}, latency "
           f"{format_si(e['latency'], 's')} (window {format_si(e['latency_lo'], 's')} to "
           f"{format_si(e['latency_hi'], 's')})\n")
+        c = self.clock
+        nominal = format_si(1 / self.bounds.clock_period, 'Hz')
+        if c.hz is not None:
+            measured = (f"{format_si(c.hz, 'Hz', 9)} from {c.source}, {c.ppm:+.2f} ppm against the config's {nominal} "
+                        f"(standard error {c.ppm_error:.2f} ppm, tolerance {self.bounds.clock_ppm:g} ppm)")
+        else:
+            measured = "not measured"
+        if c.recovered:
+            assert c.window is not None
+            w(f"clock: recovered: {measured}{'; ' + c.reason if c.reason else ''}; output edges within "
+              f"{format_si(c.window[0], 's')} to {format_si(c.window[1], 's')} of its grid\n")
+        else:
+            w(f"clock: not recovered ({c.reason}), nominal time base; {measured}\n")
+        r = self.resolution
         w(f"strobes: {len(self.strobe_times)}; strobe intervals whose pulse counts differ from the model: "
-          f"{self.strobe_mismatches}\n\n")
+          f"{self.strobe_mismatches}\n")
+        if c.recovered:
+            w(f"  cycle of each strobe: {r['several']} could fall in more than one; fixed by the capture alone "
+              f"{r['capture']}, by the first output edge {r['output']}, by the model's fit {r['model']} "
+              f"({r['moved']} moved from the nearest cycle), contradicted by the output edge {r['contradicted']}\n")
+        w("\n")
         for ch in self.channels:
             w(f"channel {ch.name}: matched {ch.matched}, missing {ch.missing}, extra {ch.extra}, "
               f"width {ch.width_errors}, gap {ch.gap_errors}; unmeasurable {ch.unmeasurable}, "
@@ -509,6 +608,12 @@ class BenchReport:
             "strobes": len(self.strobe_times),
             "strobe_mismatches": self.strobe_mismatches,
             "clock_ppm": self.clock_ppm, "clock_ppm_error": self.clock_ppm_error,
+            "clock": {"recovered": self.clock.recovered, "hz": self.clock.hz, "ppm": self.clock.ppm,
+                      "ppm_error": self.clock.ppm_error, "source": self.clock.source, "reason": self.clock.reason,
+                      "window": None if self.clock.window is None else list(self.clock.window),
+                      "offset": None if self.clock.offset is None else list(self.clock.offset),
+                      "outliers": self.clock.outliers},
+            "strobe_resolution": dict(self.resolution),
             "channels": [{
                 "name": ch.name, "unit": ch.unit, "weight": ch.weight,
                 "predicted": list(ch.predicted), "captured": list(ch.captured),
@@ -586,20 +691,87 @@ def _match(pred: np.ndarray, lo: np.ndarray, hi: np.ndarray,
     return pairs, missing, extra
 
 
-def _cycle_converter(capture: Capture, clock_hz: float, strobe_times: np.ndarray) -> Callable[[Any], np.ndarray]:
-    """``c(t)`` of the matching rule: capture seconds to emulator cycles."""
-    if strobe_times.size:
-        x = (strobe_times - capture.start) * clock_hz
-        angle = np.angle(np.mean(np.exp(2j * np.pi * x)))
-        phase = float(angle / (2 * np.pi)) % 1.0
-    else:
-        phase = 0.0
+@dataclass(frozen=True)
+class _NominalBase:
+    """The time base without a recovered clock: the config's clock, phased on the strobe's edges.
 
-    def convert(t: np.ndarray | float) -> np.ndarray:
-        x = (np.asarray(t, dtype=np.float64) - capture.start) * clock_hz - phase
+    ``c(t) = round((t - t0) / T - phi) + 1`` for every time, with ``phi`` the circular
+    mean of the strobe edges' phases within a clock period (so a simulated capture,
+    whose edges all sit on the clock grid, converts exactly).
+    """
+
+    start: float
+    clock_hz: float
+    phase: float
+
+    @classmethod
+    def of(cls, capture: Capture, clock_hz: float, strobe_times: np.ndarray) -> _NominalBase:
+        x = (strobe_times - capture.start) * clock_hz
+        angle = np.angle(np.mean(np.exp(2j * np.pi * x))) if strobe_times.size else 0.0
+        return cls(capture.start, clock_hz, float(angle / (2 * np.pi)) % 1.0)
+
+    def input_cycle(self, t: np.ndarray | float, observed: bool) -> np.ndarray:
+        x = (np.asarray(t, dtype=np.float64) - self.start) * self.clock_hz - self.phase
         return np.rint(x).astype(np.int64) + 1
 
-    return convert
+
+#: How a strobe's take cycle was fixed: by its own captured time (one cycle possible), by the
+#: first output edge it caused, by the model's fit (no output edge answered it), at the nearest
+#: cycle because the output edge contradicts its time, or by the nominal time base.
+FIXED_BY = ("capture", "output", "model", "contradicted", "nominal")
+
+
+@dataclass
+class _Strobes:
+    """The strobe pin's active pulses and the cycles they may start in.
+
+    Attributes
+    ----------
+    t_on, t_off : ndarray
+        Capture times of each active and inactive edge (NaN: the capture ends while active).
+    lo, hi, nominal : ndarray of int
+        Cycles the active edge may fall in, and the one its time gives.
+    off : ndarray of int
+        Cycle of the inactive edge from its time (-1: none).
+    taken : ndarray of int
+        From the measured width: 1 the glitch filter surely takes the strobe, 0 surely
+        not, -1 undecided (the width in cycles is kept as measured).
+    choice : ndarray of int
+        The cycle the model is driven with.
+    how : list of str
+        One of :data:`FIXED_BY` per strobe.
+    """
+
+    t_on: np.ndarray
+    t_off: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    nominal: np.ndarray
+    off: np.ndarray
+    taken: np.ndarray
+    choice: np.ndarray
+    how: list[str]
+
+    def edges(self, min_width: int) -> list[int]:
+        """The strobe pin's edges for the model, strictly increasing, each taken strobe ``min_width`` long."""
+        out: list[int] = []
+        prev = -1
+        for s in range(self.choice.size):
+            e = max(int(self.choice[s]), prev + 1)
+            out.append(e)
+            prev = e
+            if self.off[s] >= 0:
+                f = int(self.off[s])
+                if self.taken[s] == 1:
+                    f = max(f, e + min_width)
+                elif self.taken[s] == 0:
+                    f = min(f, e + min_width - 1)
+                else:
+                    f = e + f - int(self.nominal[s])
+                f = max(f, e + 1)
+                out.append(f)
+                prev = f
+        return out
 
 
 @dataclass
@@ -608,15 +780,20 @@ class _Drive:
 
     Attributes
     ----------
-    convert : callable
-        Capture seconds to cycles (the matching rule's ``c(t)``).
     strobe_t, strobe_c : ndarray
-        Capture times and cycles of the strobe pin's active edges.
+        Capture times of the strobe pin's active edges, and the cycles the model takes them at.
     start_cycle, end_cycle : int
         Cycles of the capture's first and last sample.
+    grid : ClockGrid or None
+        The recovered clock; None when the nominal time base is used.
+    strobes : _Strobes
+        How each strobe's cycle was fixed.
+    moved : int
+        Strobes resolved by the model's fit at another cycle than their time's nearest.
+    fit_runs : int
+        Model runs the fit took.
     """
 
-    convert: Callable[[Any], np.ndarray]
     strobe_t: np.ndarray
     strobe_c: np.ndarray
     start_cycle: int
@@ -624,11 +801,15 @@ class _Drive:
     params: HardwareParams
     stim: Stimulus
     result: RunResult
+    grid: ClockGrid | None
+    strobes: _Strobes
+    moved: int = 0
+    fit_runs: int = 0
 
 
-def _strobe_toggles(capture: Capture, config: Config, ref: SignalRef, bounds: Bounds, notes: list[str],
-                    lines: dict[str, Trace]) -> tuple[np.ndarray, Callable[[Any], np.ndarray], np.ndarray]:
-    """The strobe pin's toggles from inactive (times and cycles) and the time base they fix."""
+def _strobe_toggles(capture: Capture, config: Config, ref: SignalRef, notes: list[str],
+                    lines: dict[str, Trace]) -> np.ndarray:
+    """The strobe pin's toggles from inactive, capture seconds."""
     hw = config.hw
     strobe = _logical(capture.traces[ref.name], ref.inverted, not hw.edge_rising)
     lines["strobe"] = strobe
@@ -641,10 +822,13 @@ def _strobe_toggles(capture: Capture, config: Config, ref: SignalRef, bounds: Bo
                         f"({'active high' if hw.edge_rising != ref.inverted else 'active low'}, "
                         f"level {strobe.initial} throughout); the model is driven by the capture's strobe, so "
                         "a capture needs at least one; check the map and the strobe's wiring")
-    convert = _cycle_converter(capture, config.clock_hz, toggles)
-    cyc = convert(toggles)
+    return toggles
+
+
+def _without_glitches(capture: Capture, config: Config, toggles: np.ndarray, cyc: np.ndarray, bounds: Bounds,
+                      notes: list[str], name: str) -> np.ndarray:
+    """Which toggles to keep: two in one clock cycle are a glitch the synchronizer may or may not see."""
     keep = np.ones(cyc.size, dtype=bool)
-    # Two toggles in one clock cycle: a glitch the emulator's synchronizer may or may not see.
     glitches = 0
     for index in np.flatnonzero(np.diff(cyc) <= 0):
         if keep[index] and keep[index + 1]:
@@ -652,30 +836,206 @@ def _strobe_toggles(capture: Capture, config: Config, ref: SignalRef, bounds: Bo
             glitches += 1
     if glitches:
         notes.append(f"{glitches} strobe glitch(es) shorter than one clock cycle ignored")
-    toggles, cyc = toggles[keep], cyc[keep]
-    if not np.all(np.diff(cyc) > 0):
-        raise UserError(f"{capture.source}: the strobe on {strobe.name!r} toggles faster than the emulator's "
+    if not np.all(np.diff(cyc[keep]) > 0):
+        raise UserError(f"{capture.source}: the strobe on {name!r} toggles faster than the emulator's "
                         f"clock ({format_si(config.clock_hz, 'Hz')}) can follow; check the config's clock")
-    if toggles.size == 0:
-        raise UserError(f"{capture.source}: no strobe edges on {strobe.name!r} after removing glitches "
+    if not keep.any():
+        raise UserError(f"{capture.source}: no strobe edges on {name!r} after removing glitches "
                         "shorter than one clock cycle")
     period = 1.0 / config.clock_hz
-    active = toggles[1::2] - toggles[0::2][: toggles[1::2].size]
-    near = np.abs(active - hw.min_width_cyc * period) <= period + bounds.length(0)
+    kept = toggles[keep]
+    active = kept[1::2] - kept[0::2][: kept[1::2].size]
+    near = np.abs(active - config.hw.min_width_cyc * period) <= period + bounds.length(0)
     if np.any(near):
         notes.append(f"{int(near.sum())} strobe(s) last within the sampling bound of the glitch filter's "
-                     f"{hw.min_width_cyc} cycles: the emulator may take or ignore them either way")
-    return toggles, convert, cyc
+                     f"{config.hw.min_width_cyc} cycles: the emulator may take or ignore them either way")
+    return keep
+
+
+def _burst_starts(traces: list[Trace], pulses: list[tuple[np.ndarray, np.ndarray, int]], capture: Capture,
+                  grid: ClockGrid, hw: HardwareParams, bounds: Bounds) -> np.ndarray:
+    """Pin-edge cycles implied by the channel's captured pulses that start on an idle emitter.
+
+    An idle emitter starts a hand-over's first pulse the cycle after the strobe is taken,
+    ``L`` cycles after the pin edge (``docs/timing.md``). A pulse whose low time before it
+    is longer than the gap (beyond the sampling bound) surely started on an idle emitter;
+    one sent back to back could belong to an earlier hand-over.
+    """
+    rises = np.concatenate([p[0] for p in pulses])
+    falls = np.concatenate([p[1] for p in pulses])
+    order = np.argsort(rises, kind="stable")
+    rises, falls = rises[order], falls[order]
+    # A pulse active at the capture's start ends at its line's first change; before that, nothing is known.
+    before = [tr.changes[0] if tr.changes.size else math.inf for tr in traces if tr.initial == 1]
+    latest = np.fmax.accumulate(np.concatenate(([max(before, default=capture.start)], falls)))
+    prev = latest[:-1]
+    gap = hw.gap_cyc * grid.period
+    start = (rises - prev) > gap + bounds.length(gap)
+    start &= grid.on_grid(rises)
+    return np.sort(grid.output_cycle(rises[start]) - hw.latency_cyc)
+
+
+def _answer(strobes: _Strobes, implied: list[np.ndarray]) -> int:
+    """Fix each strobe's cycle from the first output edge it caused, where one did; the contradictions.
+
+    Each channel's burst start within a cycle of the strobe's possible cycles answers it.
+    Answers inside the possible cycles fix the strobe (the most common one, when
+    channels disagree); answers only outside contradict it, and it stays at its nearest
+    cycle. Returns the strobes with a contradicting or disagreeing answer.
+    """
+    n = strobes.choice.size
+    none = np.iinfo(np.int64).min
+    answers = np.full((max(len(implied), 1), n), none, dtype=np.int64)
+    for ch, cycles in enumerate(implied):
+        if cycles.size:
+            at = np.searchsorted(cycles, strobes.lo - 1, side="left")
+            value = cycles[np.minimum(at, cycles.size - 1)]
+            found = (at < cycles.size) & (value <= strobes.hi + 1)
+            answers[ch, found] = value[found]
+    valid = answers != none
+    inside = valid & (answers >= strobes.lo) & (answers <= strobes.hi)
+    got, n_inside = valid.sum(axis=0), inside.sum(axis=0)
+    low = np.where(inside, answers, np.iinfo(np.int64).max).min(axis=0)
+    high = np.where(inside, answers, none).max(axis=0)
+    disagree = (n_inside > 0) & (low != high)
+    choice = np.where(n_inside > 0, low, strobes.choice)
+    for s in np.flatnonzero(disagree):
+        values, counts = np.unique(answers[:, s][inside[:, s]], return_counts=True)
+        choice[s] = values[np.argmax(counts)]
+    strobes.choice[:] = choice
+    strobes.taken[n_inside > 0] = 1
+    single = strobes.lo == strobes.hi
+    strobes.how[:] = np.where(n_inside > 0, np.where(single, "capture", "output"),
+                              np.where(got > 0, "contradicted", np.where(single, "capture", "model"))).tolist()
+    return int(np.sum((got > 0) & ((n_inside < got) | disagree)))
+
+
+#: Rounds of the model's fit (each runs the model twice); it stops earlier when nothing is left to
+#: try, or after FIT_FRUITLESS rounds in a row that kept no move (a real fault, not the time base).
+FIT_ROUNDS = 24
+FIT_FRUITLESS = 3
+
+
+def _fit_strobes(strobes: _Strobes, run: Callable[[np.ndarray], RunResult], captured: np.ndarray,
+                 span: tuple[int, int], channels: int) -> tuple[int, int]:
+    """Choose, for the strobes no output edge fixed, the possible cycle that makes the model agree.
+
+    Rising edges, as ``cycle * 2 * channels + 2 * channel + line`` codes within ``span``,
+    are compared per strobe interval. Where an interval differs, the unresolved strobe
+    that starts it (or the one before) is moved to another of its possible cycles; the
+    move is kept when it leaves fewer differing intervals around it. Moves far enough
+    apart are tried in the same model run.
+
+    Returns
+    -------
+    (int, int)
+        Strobes moved from their nearest cycle, and model runs.
+    """
+    free = np.array([h == "model" for h in strobes.how])
+    runs = 0
+    if not free.any():
+        return 0, runs
+    width = 2 * channels
+
+    def differing(result: RunResult) -> np.ndarray:
+        codes = np.array([e.rise * width + 2 * e.channel + e.line for e in result.edges
+                          if span[0] <= e.rise <= span[1]], dtype=np.int64)
+        values = np.union1d(codes, captured)
+        pred = np.bincount(np.searchsorted(values, codes), minlength=values.size)
+        got = np.bincount(np.searchsorted(values, captured), minlength=values.size)
+        cycles = values[pred != got] // width
+        return np.unique(np.searchsorted(strobes.nominal, cycles, side="right") - 1)
+
+    def near(bad: np.ndarray, b: int) -> int:
+        return int(np.sum((bad >= b - 1) & (bad <= b + 2)))
+
+    tried: set[tuple[int, int]] = set()
+    fruitless = 0
+    for _ in range(FIT_ROUNDS):
+        if fruitless >= FIT_FRUITLESS:
+            break
+        bad = differing(run(strobes.choice))
+        runs += 1
+        picks: list[tuple[int, int, int]] = []
+        last = -(1 << 60)
+        for b in bad:
+            if b < 0 or b - last < 4:
+                continue
+            for s in (b, b - 1):
+                if s < 0 or not free[s]:
+                    continue
+                alts = sorted((c for c in range(int(strobes.lo[s]), int(strobes.hi[s]) + 1)
+                               if c != strobes.choice[s] and (s, c) not in tried),
+                              key=lambda c, s=s: abs(c - int(strobes.nominal[s])))
+                if alts:
+                    tried.add((s, alts[0]))
+                    picks.append((int(s), alts[0], int(b)))
+                    last = int(b)
+                    break
+        if not picks:
+            break
+        trial = strobes.choice.copy()
+        for s, c, _b in picks:
+            trial[s] = c
+        after = differing(run(trial))
+        runs += 1
+        kept = 0
+        for s, c, b in picks:
+            if near(after, b) < near(bad, b):
+                strobes.choice[s] = c
+                kept += 1
+        fruitless = 0 if kept else fruitless + 1
+    moved = int(np.sum(free & (strobes.choice != strobes.nominal)))
+    return moved, runs
 
 
 def _drive_model(capture: Capture, config: Config, signals: dict[str, SignalRef], bounds: Bounds,
                  program: RateProgram | None, program_start: float | None, notes: list[str],
-                 lines: dict[str, Trace]) -> _Drive:
-    """Convert the strobe, arm line and program to a stimulus and run the reference model."""
+                 lines: dict[str, Trace], grid: ClockGrid | None,
+                 outputs: list[tuple[list[Trace], list[tuple[np.ndarray, np.ndarray, int]]]]) -> _Drive:
+    """Convert the strobe, arm line and program to a stimulus and run the reference model.
+
+    With a recovered clock, each strobe's cycle is fixed by its time where only one is
+    possible, else by the first output edge it caused, else by the model's fit; without
+    one, every time is converted by the nominal time base.
+    """
     hw = config.hw
-    toggles, convert, cyc = _strobe_toggles(capture, config, signals["strobe"], bounds, notes, lines)
-    start_cycle = int(convert(capture.start))
-    end_cycle = int(convert(capture.end))
+    toggles = _strobe_toggles(capture, config, signals["strobe"], notes, lines)
+    base: ClockGrid | _NominalBase = grid if grid is not None else _NominalBase.of(capture, config.clock_hz, toggles)
+    cyc = base.input_cycle(toggles, observed=True)
+    keep = _without_glitches(capture, config, toggles, cyc, bounds, notes, lines["strobe"].name)
+    toggles, cyc = toggles[keep], cyc[keep]
+    start_cycle = int(base.input_cycle(capture.start, observed=False))
+    end_cycle = int(base.input_cycle(capture.end, observed=False))
+
+    t_on, t_off = toggles[0::2], np.full(toggles[0::2].size, np.nan)
+    t_off[: toggles[1::2].size] = toggles[1::2]
+    off = np.full(t_on.size, -1, dtype=np.int64)
+    off[: toggles[1::2].size] = cyc[1::2]
+    nominal = cyc[0::2].copy()
+    if grid is None:
+        lo = hi = nominal
+        taken = np.full(t_on.size, -1, dtype=np.int64)
+        how = ["nominal"] * t_on.size
+    else:
+        lo, hi = grid.input_range(t_on)
+        lo, hi = np.maximum(lo, 0), np.maximum(hi, 0)  # the model's cycles start at 0
+        nominal = np.clip(nominal, lo, hi)
+        spread = bounds.sample_period + 2 * bounds.jitter
+        width = t_off - t_on
+        m = hw.min_width_cyc * grid.period
+        taken = np.where(width - spread >= m + grid.period, 1,
+                         np.where(width + spread < m - grid.period, 0, -1)).astype(np.int64)
+        how = ["capture"] * t_on.size
+    strobes = _Strobes(t_on, t_off, lo, hi, nominal, off, taken, nominal.copy(), how)
+    contradicted = 0
+    if grid is not None:
+        implied = [_burst_starts(traces, pulses, capture, grid, hw, bounds) for traces, pulses in outputs]
+        contradicted = _answer(strobes, implied)
+        if contradicted:
+            notes.append(f"{contradicted} strobe(s) whose first output edge is not where the latency "
+                         f"({hw.latency_cyc} cycles) puts it for any cycle the strobe's time allows: compared "
+                         "at the nearest cycle")
 
     arm_ref = signals["arm"]
     arm_time: float | None
@@ -683,8 +1043,9 @@ def _drive_model(capture: Capture, config: Config, signals: dict[str, SignalRef]
         arm = _logical(capture.traces[arm_ref.name], arm_ref.inverted, False)
         lines["arm"] = arm
         arm_list: dict[int, bool] = {start_cycle: bool(arm.initial)}
-        for t, level in zip(arm.changes, (arm.initial ^ 1 ^ (np.arange(arm.changes.size) & 1)), strict=True):
-            arm_list[int(convert(t))] = bool(level)
+        levels = arm.initial ^ 1 ^ (np.arange(arm.changes.size) & 1)
+        for c, level in zip(base.input_cycle(arm.changes, observed=True), levels, strict=True):
+            arm_list[int(c)] = bool(level)
         arm_changes = tuple(sorted(arm_list.items()))
         rises = arm.edges(1)
         arm_time = capture.start if arm.initial else (float(rises[0]) if rises.size else None)
@@ -705,15 +1066,18 @@ def _drive_model(capture: Capture, config: Config, signals: dict[str, SignalRef]
     init = list(hw.rates)
     changes: list[RateChange] = []
     origin_time = program_start if program_start is not None else arm_time
+    # The arm line's rise is a captured edge; a given program start is exact.
+    observed = program_start is None and arm_ref.name in capture.traces and arm_time != capture.start
     if program is not None and origin_time is None:
         notes.append("the program is not applied: the outputs are never armed")
     elif program is not None and program.segments is not None:
         # Tick 0 is the first armed cycle: the cycle after the arm input rises.
-        origin = int(convert(origin_time)) + (0 if program_start is not None else 1)
+        origin = int(base.input_cycle(origin_time, observed=observed)) + (0 if program_start is not None else 1)
         changes = list(program.segments.rate_changes(max(1, origin), hw.rates))
     elif program is not None:
         for step in program.steps:
-            cycle = int(convert(origin_time + step.at))
+            # A step's time counts from the arm line's rise as the capture shows it.
+            cycle = int(base.input_cycle(origin_time + step.at, observed=observed))
             fixed = config.rate_to_fixed(step.channel, step.rate)
             if cycle < 1:
                 init[step.channel] = fixed
@@ -724,16 +1088,52 @@ def _drive_model(capture: Capture, config: Config, signals: dict[str, SignalRef]
     params = replace(hw, init_rates=tuple(init))
     # Run a little past the capture's end, so a pulse captured at the end has its prediction.
     margin = 3 + math.ceil((1.0 / config.clock_hz + 2 * bounds.length(0)) * config.clock_hz)
-    n_cyc = max(end_cycle + margin, int(cyc[-1]) + 1)
-    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(int(c) for c in cyc), rate_changes=tuple(changes),
-                    arm_changes=arm_changes)
-    return _Drive(convert, toggles[0::2], cyc[0::2], start_cycle, end_cycle, params, stim,
-                  run_model(params, stim))
+    if grid is None:
+        pin = [int(c) for c in cyc]
+    else:
+        pin = strobes.edges(hw.min_width_cyc)
+    n_cyc = max(end_cycle + margin, pin[-1] + 1)
+
+    def run(choice: np.ndarray) -> RunResult:
+        edges = pin if grid is None else replace(strobes, choice=choice).edges(hw.min_width_cyc)
+        stim = Stimulus(cycles=max(n_cyc, edges[-1] + 1), strobe_edges=tuple(edges), rate_changes=tuple(changes),
+                        arm_changes=arm_changes)
+        return run_model(params, stim)
+
+    moved = runs = 0
+    if grid is not None:
+        width = 2 * hw.n
+        first = int(np.min(lo))
+        last = int(np.floor((capture.end - grid.window[1] - grid.origin) / grid.period))
+        codes = []
+        for ch, (_traces, pulses) in enumerate(outputs):
+            for ln, (rises, _falls, _cut) in enumerate(pulses):
+                c = grid.output_cycle(rises[rises >= t_on[0]])
+                codes.append(c * width + 2 * ch + ln)
+        captured = np.sort(np.concatenate(codes)) if codes else np.empty(0, dtype=np.int64)
+        captured = captured[(captured // width >= first) & (captured // width <= last)]
+        moved, runs = _fit_strobes(strobes, run, captured, (first, last), hw.n)
+        pin = strobes.edges(hw.min_width_cyc)
+        n_cyc = max(n_cyc, pin[-1] + 1)
+    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(pin), rate_changes=tuple(changes), arm_changes=arm_changes)
+    # The active edges as the model saw them (an edge pushed past its neighbour went where it was pushed).
+    strobe_c = np.array(pin[0::2] if grid is None else [pin[i] for i in _active_indices(strobes)], dtype=np.int64)
+    return _Drive(t_on, strobe_c, start_cycle, end_cycle, params, stim, run_model(params, stim), grid, strobes,
+                  moved, runs)
+
+
+def _active_indices(strobes: _Strobes) -> list[int]:
+    """Positions of the active edges in :meth:`_Strobes.edges`."""
+    out, at = [], 0
+    for s in range(strobes.choice.size):
+        out.append(at)
+        at += 2 if strobes.off[s] >= 0 else 1
+    return out
 
 
 @dataclass
 class _Prediction:
-    """One channel's predicted pulses, placed in capture time (rule 2) with their windows."""
+    """One channel's predicted pulses, placed in capture time with their windows."""
 
     rise_c: np.ndarray   # rise cycles, sorted
     line: np.ndarray     # POS or NEG
@@ -758,6 +1158,13 @@ def _predict(drive: _Drive, ch: int, bounds: Bounds, start: float) -> _Predictio
     anchor = np.maximum.accumulate(np.where(starts, np.arange(rise_c.size), 0)) if rise_c.size else rise_c
     anchor = burst_anchor[anchor] if rise_c.size else anchor
     has = anchor >= 0
+    if drive.grid is not None:
+        # Every edge on the recovered clock's grid, within the sampling window of its own cycle.
+        grid = drive.grid
+        rise = grid.edge_time(rise_c)
+        fall = grid.edge_time(fall_c)
+        lo, hi = np.full(rise.size, grid.window[0]), np.full(rise.size, grid.window[1])
+        return _Prediction(rise_c, line, rise, fall, starts, anchor, lo, hi)
     period = 1.0 / hw.clock_hz
     a_t = np.where(has, drive.strobe_t[np.maximum(anchor, 0)], start)
     a_c = np.where(has, drive.strobe_c[np.maximum(anchor, 0)], drive.start_cycle)
@@ -778,9 +1185,24 @@ class _ChannelOutcome:
     counts: np.ndarray                  # (strobes, 2 lines, captured/predicted)
 
 
+def _captured_outputs(capture: Capture, config: Config, signals: dict[str, SignalRef],
+                      lines: dict[str, Trace]) -> list[tuple[list[Trace], list[tuple[np.ndarray, np.ndarray, int]]]]:
+    """Each channel's logical lines and their pulses (:func:`_pulses`), in line order."""
+    out = []
+    for channel in config.channels:
+        traces = []
+        for line_name in LINE_NAMES:
+            ref = signals[f"{channel.name}_{line_name}"]
+            trace = _logical(capture.traces[ref.name], ref.inverted, config.hw.active_low)
+            lines[f"{channel.name}_{line_name}"] = trace
+            traces.append(trace)
+        out.append((traces, [_pulses(trace) for trace in traces]))
+    return out
+
+
 def _compare_channel(ch: int, config: Config, capture: Capture, drive: _Drive, bounds: Bounds,
-                     expected: dict[str, float], signals: dict[str, SignalRef],
-                     lines: dict[str, Trace]) -> _ChannelOutcome:
+                     expected: dict[str, float],
+                     output: tuple[list[Trace], list[tuple[np.ndarray, np.ndarray, int]]]) -> _ChannelOutcome:
     """Match one channel's captured pulses with the model's and measure them (rules 3 to 7)."""
     hw = drive.params
     channel = config.channels[ch]
@@ -792,14 +1214,8 @@ def _compare_channel(ch: int, config: Config, capture: Capture, drive: _Drive, b
     found: list[Discrepancy] = []
     predicted: dict[str, np.ndarray] = {}
 
-    captured = []
-    unknown = 0
-    for line_name in LINE_NAMES:
-        ref = signals[f"{channel.name}_{line_name}"]
-        trace = _logical(capture.traces[ref.name], ref.inverted, hw.active_low)
-        lines[f"{channel.name}_{line_name}"] = trace
-        unknown += trace.unknown
-        captured.append(_pulses(trace))
+    traces, captured = output
+    unknown = sum(trace.unknown for trace in traces)
 
     # Latency: from each strobe that started a burst to the first captured rise on either line.
     all_rises = np.sort(np.concatenate([c[0] for c in captured]))
@@ -954,7 +1370,8 @@ def _clock_offset(bursts: list[tuple[float, float]]) -> tuple[float | None, floa
 
 
 def check_capture(capture_path: str | Path, config: Config, *, program: RateProgram | None = None,
-                  capture_map: CaptureMap | None = None, program_start: float | None = None) -> BenchReport:
+                  capture_map: CaptureMap | None = None, program_start: float | None = None,
+                  clock_recovery: bool = True) -> BenchReport:
     """Read a capture and compare it with the reference model (the matching rule above).
 
     Parameters
@@ -970,6 +1387,11 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
     program_start : float, optional
         Capture time (s) at which the program starts; by default, when the ``arm``
         input rises (the capture's start without an arm line).
+    clock_recovery : bool
+        Recover the emulator's clock from the output edges and fix each strobe's cycle
+        with it (default). False uses the nominal time base, as when the sampling is too
+        coarse to recover the clock: an asynchronous strobe's cycle is then known only to
+        within one, and the windows are the wider ones of that rule.
 
     Returns
     -------
@@ -1005,29 +1427,70 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
 
     notes: list[str] = []
     lines: dict[str, Trace] = {}
-    drive = _drive_model(capture, config, signals, bounds, program, program_start, notes, lines)
+    outputs = _captured_outputs(capture, config, signals, lines)
+    grid: ClockGrid | None = None
+    failed: NoClock | None = None
+    if clock_recovery:
+        rises = np.concatenate([p[0] for _traces, pulses in outputs for p in pulses])
+        found_clock = recover_clock(rises, period, ts, cmap.jitter, bounds.clock_ppm)
+        if isinstance(found_clock, ClockGrid):
+            grid = found_clock.renumbered(capture.start)
+        else:
+            failed = found_clock
+            notes.append(f"the emulator's clock was not recovered from the output edges: {failed.reason}; the "
+                         "nominal time base is used, which fixes an asynchronous strobe's cycle only to within one")
+    else:
+        notes.append("clock recovery off: the nominal time base is used, which fixes an asynchronous strobe's "
+                     "cycle only to within one")
+    drive = _drive_model(capture, config, signals, bounds, program, program_start, notes, lines, grid, outputs)
     latency = hw.latency_cyc * period
     lat_lo, lat_hi = bounds.window(latency)
     expected = {"width": width_s, "gap": gap_s, "latency": latency,
                 "latency_lo": latency + lat_lo, "latency_hi": latency + lat_hi}
 
-    outcomes = [_compare_channel(ch, config, capture, drive, bounds, expected, signals, lines)
-                for ch in range(hw.n)]
+    outcomes = [_compare_channel(ch, config, capture, drive, bounds, expected, outputs[ch]) for ch in range(hw.n)]
     checks = [o.check for o in outcomes]
-    found = sorted((d for o in outcomes for d in o.found), key=lambda d: (d.time, d.channel, d.line, d.kind))
+    found = [d for o in outcomes for d in o.found]
     strobe_counts = np.stack([o.counts for o in outcomes], axis=1)
     mismatched = int(np.any(strobe_counts[..., 0] != strobe_counts[..., 1], axis=(1, 2)).sum())
 
-    bursts = [b for o in outcomes for b in o.bursts]
-    clock_ppm, clock_err = _clock_offset(bursts)
-    if clock_ppm is not None:
-        notes.append(f"the emulator's clock against the analyzer's: {clock_ppm:+.1f} ppm, standard error "
-                     f"{clock_err:.1f} ppm, from the spacing of {len(bursts)} bursts (a real difference is a "
-                     "delta-V scale error of the same size)")
-    if any(c.flips for c in checks):
+    tolerance = bounds.clock_ppm
+    if grid is not None and grid.measured:
+        hz, ppm, err, source = grid.hz, grid.ppm, grid.ppm_error, f"{grid.edges} output edges"
+        if abs(grid.ppm) > tolerance + 3 * grid.ppm_error:
+            found.append(Discrepancy("clock", "", "", capture.start, config.clock_hz, grid.hz))
+    else:
+        # Without a measured period, the spacing of the bursts' pulses still estimates the clock.
+        bursts = [b for o in outcomes for b in o.bursts]
+        ppm, err = _clock_offset(bursts)
+        hz = None if ppm is None else config.clock_hz * (1 + ppm * 1e-6)
+        source = f"the spacing of {len(bursts)} bursts" if ppm is not None else ""
+        if failed is not None and failed.off_grid:
+            found.append(Discrepancy("clock", "", "", capture.start, config.clock_hz, None))
+    if grid is not None:
+        reason = "" if grid.measured else "the output edges fix its phase only; its period is the config's"
+        clock = ClockCheck(True, hz, ppm, err, source, reason, grid.window, grid.offset, grid.outliers)
+    else:
+        reason = failed.reason if failed is not None else "clock recovery off"
+        clock = ClockCheck(False, hz, ppm, err, source, reason, None, None, 0)
+    if clock.ppm is not None:
+        notes.append("the emulator's clock is measured against the analyzer's: a real difference is a delta-V "
+                     "scale error of the same size")
+    if grid is not None and grid.outliers:
+        notes.append(f"{grid.outliers} output rising edge(s) off the recovered clock's grid (not used to fit it)")
+    if grid is not None and grid.alternatives:
+        notes.append(f"{grid.alternatives} other clock period(s) fit the output edges as well: the edges' spacing "
+                     "is too regular to tell them apart; the one with the least residual is used")
+    resolution = _resolution(drive)
+    if resolution["model"]:
+        notes.append(f"{resolution['model']} strobe(s) could fall in more than one cycle and caused no output edge "
+                     f"that fixes it: resolved by the model's fit ({drive.moved} moved from the cycle nearest their "
+                     "time); both cycles are possible given the sampling (see docs/bench.md)")
+    if grid is None and any(c.flips for c in checks):
         notes.append("a pulse handed over one strobe apart from the model (net count +1 at one strobe, -1 at the "
-                     "next) can come from the time base: a capture fixes an asynchronous strobe's clock cycle "
-                     "only to within one cycle (see docs/bench.md); check the running count")
+                     "next) can come from the time base: without the recovered clock a capture fixes an "
+                     "asynchronous strobe's clock cycle only to within one cycle (see docs/bench.md); check the "
+                     "running count")
     strobe_unknown = lines["strobe"].unknown + (lines["arm"].unknown if "arm" in lines else 0)
     if strobe_unknown:
         notes.append(f"{strobe_unknown} x/z value(s) read on the strobe or arm line (held at the last level)")
@@ -1039,6 +1502,7 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
         notes.append(f"{unmeasurable} pulse(s) or gap(s) narrower than two samples "
                      f"({format_si(bounds.measurable, 's')}): flagged unmeasurable, not guessed; sample faster")
     compared = any(c.matched for c in checks)
+    found.sort(key=lambda d: (d.time, d.channel, d.line, d.kind))
     if found:
         verdict = "fail"
     elif unmeasurable or strobe_unknown or any(c.unknown for c in checks) or not compared:
@@ -1052,11 +1516,23 @@ def check_capture(capture_path: str | Path, config: Config, *, program: RateProg
         program_source=program.source if program else "none (the config's initial rates)",
         signals=signals, bounds=bounds, expected=expected, channels=tuple(checks), discrepancies=tuple(found),
         strobe_times=drive.strobe_t, strobe_counts=strobe_counts, strobe_mismatches=mismatched, verdict=verdict,
-        notes=tuple(notes), model_cycles=drive.stim.cycles, clock_ppm=clock_ppm, clock_ppm_error=clock_err,
+        notes=tuple(notes), model_cycles=drive.stim.cycles, clock_ppm=clock.ppm, clock_ppm_error=clock.ppm_error,
+        clock=clock, strobe_cycles=drive.strobe_c, strobe_options=drive.strobes.hi - drive.strobes.lo + 1,
+        strobe_fixed_by=tuple(drive.strobes.how), resolution=resolution,
         lines=lines, predicted={k: v for o in outcomes for k, v in o.predicted.items()},
         widths_all=np.asarray([w for o in outcomes for w in o.widths]),
         latency_all=np.asarray([t for o in outcomes for t in o.latencies]),
     )
+
+
+def _resolution(drive: _Drive) -> dict[str, int]:
+    """How many strobes had their cycle fixed each way (:data:`FIXED_BY`), and the other counts."""
+    how = drive.strobes.how
+    out = {kind: sum(h == kind for h in how) for kind in FIXED_BY}
+    out["several"] = int(np.sum(drive.strobes.hi > drive.strobes.lo))
+    out["moved"] = drive.moved
+    out["fit_runs"] = drive.fit_runs
+    return out
 
 
 # -- the report folder -------------------------------------------------------------------
@@ -1102,12 +1578,13 @@ def write_report(report: BenchReport, out_dir: str | Path) -> list[Path]:
     names = [ch.name for ch in report.channels]
     with path.open("w", newline="") as handle:
         writer = csv.writer(handle)
-        header = ["strobe", "time_s"]
+        header = ["strobe", "time_s", "cycle", "cycles_possible", "cycle_fixed_by"]
         for name in names:
             header += [f"{name}_pos", f"{name}_pos_model", f"{name}_neg", f"{name}_neg_model"]
         writer.writerow(header)
         for s, t in enumerate(report.strobe_times):
-            row: list[Any] = [s, repr(float(t))]
+            row: list[Any] = [s, repr(float(t)), int(report.strobe_cycles[s]), int(report.strobe_options[s]),
+                              report.strobe_fixed_by[s]]
             for ch in range(len(names)):
                 for ln in (POS, NEG):
                     row += [int(report.strobe_counts[s, ch, ln, 0]), int(report.strobe_counts[s, ch, ln, 1])]

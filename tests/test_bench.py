@@ -22,6 +22,7 @@ from dvgate.cli import main
 from dvgate.config import Config, parse_config
 from dvgate.errors import UserError
 from dvgate.sim.capture import CaptureMap, capture_map_from_args
+from dvgate.sim.model import run_model
 from dvgate.sim.stimulus import periodic_strobe_edges
 from dvgate.sim.trace import NEG, POS, Edge, RateChange, RunResult, Stimulus
 
@@ -177,8 +178,6 @@ def test_icarus_vcd_of_the_emitted_verilog_matches_the_model(tmp_path: Path) -> 
     (tmp_path / "program.toml").write_text(PROGRAM)
     # Source: Icarus Verilog, an independent simulator, running the Verilog of write_verilog.
     report = check_capture(vcd, cfg, program=load_rate_program(tmp_path / "program.toml", cfg))
-    from dvgate.sim.model import run_model
-
     assert_matches(report, run_model(cfg.hw, stim))
     assert report.lines["strobe"].name == "tb.strobe"
     assert sum(c.matched for c in report.channels) > 150
@@ -458,6 +457,10 @@ def test_cli_pass_fail_and_bad_input(amaranth_run, tmp_path: Path, capsys: pytes
     assert main(["capture", str(vcd), str(cfg_path), "--program", str(program), "-o", str(out)]) == 0
     text = capsys.readouterr().out
     assert "verdict: PASS" in text and (out / "report.json").exists() and (out / "timeline.png").exists()
+    assert "clock: recovered" in text
+    assert main(["capture", str(vcd), str(cfg_path), "--program", str(program), "--no-clock-recovery",
+                 "-o", str(tmp_path / "nominal")]) == 0
+    assert "clock: not recovered (clock recovery off)" in capsys.readouterr().out
     # Without the program the rates differ from the capture's: a failed check, exit status 1.
     assert main(["capture", str(vcd), str(cfg_path), "-o", str(tmp_path / "fail")]) == 1
     assert "verdict: FAIL" in capsys.readouterr().out
@@ -497,3 +500,217 @@ def test_match_pairs_in_order_and_prefers_the_nearer_pulse() -> None:
     # A captured pulse in reach of two predicted ones goes to the nearer window centre.
     pairs, missing, extra = _match(np.array([0.0, 2.0]), np.full(2, -3.0), np.full(2, 1.0), np.array([1.5]))
     assert pairs == [(1, 0)] and missing == [0] and extra == []
+
+
+# -- an asynchronous strobe and the emulator's own clock -------------------------------------------
+
+#: The analyzer of these captures: 2.693 MHz, not a multiple of the emulator's 1 MHz, 5 % jitter.
+ASYNC_TS = 0.3713e-6
+
+
+@dataclass(frozen=True)
+class Bench:
+    """An emulator whose clock runs ``ppm`` fast against the analyzer, strobed by a host on its own clock.
+
+    The rising clock edge that begins cycle ``k`` is at ``phase + k * period`` of the
+    analyzer's time. By docs/timing.md, a pin change between the edges beginning cycles
+    ``e`` and ``e + 1`` is seen in cycle ``e``, and an output of cycle ``k`` changes at the
+    edge beginning it (outputs are registered).
+    """
+
+    ppm: float = 80.0
+    phase: float = -0.3e-6
+
+    @property
+    def period(self) -> float:
+        return 1e-6 / (1 + self.ppm * 1e-6)
+
+    def cycle(self, t: np.ndarray | float) -> np.ndarray:
+        return np.floor((np.asarray(t) - self.phase) / self.period).astype(np.int64)
+
+    def time(self, cycle: int | float) -> float:
+        return self.phase + cycle * self.period
+
+
+def host_strobe(count: int, period: float, seed: int) -> np.ndarray:
+    """The host's strobe: toggle times of ``count`` pulses of 5.3 us, ``period`` apart +/- 0.3 us."""
+    rng = np.random.default_rng(seed)
+    on = 57.2e-6 + np.arange(count) * period + rng.uniform(-0.3e-6, 0.3e-6, count)
+    return np.sort(np.concatenate((on, on + 5.3e-6)))
+
+
+def async_config(scheme: str, x: str, y: str) -> Config:
+    raw = {**RAW, "pulses": {**RAW["pulses"], "scheme": scheme},
+           "channels": [{"name": "x", "rate": x}, {"name": "y", "rate": y}]}
+    return parse_config(raw, f"{scheme} test config")
+
+
+def async_stimulus(bench: Bench, strobe: np.ndarray, changes: tuple[RateChange, ...] = ()) -> Stimulus:
+    return Stimulus(cycles=int(bench.cycle(strobe[-1] + 60e-6)),
+                    strobe_edges=tuple(int(c) for c in bench.cycle(strobe)), rate_changes=changes)
+
+
+def async_capture(path: Path, cfg: Config, bench: Bench, strobe: np.ndarray, edges: list[Edge],
+                  seed: int) -> tuple[Path, CaptureMap]:
+    """Sample the pins: the strobe at the host's times, the outputs at the emulator's clock edges."""
+    lines = {"strobe": Line(0, strobe), "arm": Line(1, np.empty(0))}
+    for ch, name in enumerate(cfg.hw.names):
+        for line, suffix in ((POS, "pos"), (NEG, "neg")):
+            times = []
+            for edge in sorted(e for e in edges if e.channel == ch and e.line == line):
+                times.append(bench.time(edge.rise))
+                if edge.fall is not None:
+                    times.append(bench.time(edge.fall))
+            lines[f"{name}_{suffix}"] = Line(0, np.array(times))
+    jitter = 0.05 * ASYNC_TS
+    grid, levels = sample(lines, strobe[-1] + 60e-6, ASYNC_TS, jitter, seed)
+    return write_csv(path, grid, levels), capture_map_from_args(jitter=f"{jitter * 1e9} ns")
+
+
+def assert_old_time_base_fails(path: Path, cfg: Config, cmap: CaptureMap, **kwargs) -> None:
+    """The capture is a hard one: the nominal time base hands pulses over one strobe apart."""
+    old = check_capture(path, cfg, capture_map=cmap, clock_recovery=False, **kwargs)
+    assert old.verdict == "fail"
+    assert {d.kind for d in old.discrepancies} == {"missing", "extra"}
+    assert all(c.running_max <= 1 for c in old.channels)  # the computer's view stays within one pulse
+
+
+@pytest.fixture(scope="module")
+def async_burst() -> tuple[Config, Bench, np.ndarray, RunResult]:
+    from dvgate.sim.testbench import run_amaranth
+
+    # About 0.99 pulse per strobe each way (rest 1): the owed amounts stay near whole pulses.
+    cfg = async_config("burst", "32.6 m/s^2", "-32.6 m/s^2")
+    bench = Bench()
+    strobe = host_strobe(120, 30.37e-6, seed=1)
+    # Source: Amaranth's simulator running our gateware on the emulator's own cycle grid.
+    return cfg, bench, strobe, run_amaranth(cfg.hw, async_stimulus(bench, strobe))
+
+
+def test_asynchronous_strobe_and_offset_clock_pass(async_burst, tmp_path: Path) -> None:
+    cfg, bench, strobe, result = async_burst
+    path, cmap = async_capture(tmp_path / "burst.csv", cfg, bench, strobe, list(result.edges), seed=1)
+    report = check_capture(path, cfg, capture_map=cmap)
+    assert_matches(report, result)
+    # The emulator's clock is +80 ppm: recovered from the output edges within four standard errors.
+    assert report.clock.recovered and report.clock_ppm is not None and report.clock_ppm_error is not None
+    assert abs(report.clock_ppm - bench.ppm) <= 4 * report.clock_ppm_error and report.clock_ppm_error < 10
+    # Burst with rest pulses answers every strobe: the first output edge fixes every uncertain one.
+    r = report.resolution
+    assert r["several"] > 20 and r["output"] == r["several"] and r["model"] == r["contradicted"] == 0
+    assert_old_time_base_fails(path, cfg, cmap)
+
+
+@pytest.fixture(scope="module")
+def async_ternary() -> tuple[Config, Bench, np.ndarray, Stimulus, str]:
+    # x: about 0.95 pulse per strobe, so a strobe without a pulse comes when the owed amount is just
+    # under a whole one; y silent, so nothing answers those strobes. x turns negative mid-way.
+    cfg = async_config("ternary", "45.5 m/s^2", "0 m/s^2")
+    bench = Bench()
+    strobe = host_strobe(1000, 20.37e-6, seed=1)
+    turn = int(bench.cycle(strobe[2 * 600])) + 10  # between two strobes, away from any take
+    stim = async_stimulus(bench, strobe, (RateChange(turn, 0, cfg.rate_to_fixed(0, -45.5)),))
+    # The program counts from the arm line's rise (high from the capture's start): the middle of the cycle.
+    program = f'[[step]]\nat = "{bench.time(turn + 0.5) * 1e9:.3f} ns"\nx = "-45.5 m/s^2"\n'
+    return cfg, bench, strobe, stim, program
+
+
+def _ternary_check(async_ternary, tmp_path: Path, edges: list[Edge] | None = None, seed: int = 1, **kwargs):
+    cfg, bench, strobe, stim, program = async_ternary
+    result = run_model(cfg.hw, stim)
+    path, cmap = async_capture(tmp_path / "ternary.csv", cfg, bench, strobe,
+                               list(result.edges) if edges is None else edges, seed)
+    (tmp_path / "program.toml").write_text(program)
+    return result, path, cmap, {"program": load_rate_program(tmp_path / "program.toml", cfg), **kwargs}
+
+
+def test_asynchronous_strobes_nothing_answered_are_resolved_by_the_model(async_ternary, tmp_path: Path) -> None:
+    cfg, bench, _strobe, _stim, _program = async_ternary
+    result, path, cmap, kwargs = _ternary_check(async_ternary, tmp_path)
+    report = check_capture(path, cfg, capture_map=cmap, **kwargs)
+    assert_matches(report, result)
+    assert report.clock_ppm is not None and abs(report.clock_ppm - bench.ppm) < 3.0  # 20 000 cycles: well measured
+    r = report.resolution
+    assert r["model"] > 10 and r["moved"] > 0 and r["output"] > 100 and r["contradicted"] == 0
+    assert any("resolved by the model's fit" in note for note in report.notes)
+    files = write_report(report, tmp_path / "report")
+    rows = (tmp_path / "report" / "strobes.csv").read_text().splitlines()
+    assert rows[0].startswith("strobe,time_s,cycle,cycles_possible,cycle_fixed_by,")
+    assert sum(",model," in row for row in rows) == r["model"]
+    assert json.loads(files[1].read_text())["strobe_resolution"]["moved"] == r["moved"]
+    assert_old_time_base_fails(path, cfg, cmap, **kwargs)
+
+
+def _shifted(edges: list[Edge], by: int, channel: int | None = None) -> list[Edge]:
+    return [Edge(e.channel, e.line, e.rise + by, None if e.fall is None else e.fall + by)
+            if channel in (None, e.channel) else e for e in edges]
+
+
+@pytest.mark.parametrize("fault", ["three", "late", "early", "swap"])
+def test_asynchronous_capture_still_finds_faults(async_ternary, tmp_path: Path, fault: str) -> None:
+    cfg, _bench, _strobe, stim, _program = async_ternary
+    edges = list(run_model(cfg.hw, stim).edges)
+    if fault == "three":
+        x_pos = sorted(e for e in edges if e.channel == 0 and e.line == POS)
+        edges.remove(x_pos[100])
+        quiet = stim.strobe_edges[2 * 40] + 12  # y is silent; mid-way between two strobes
+        edges.append(Edge(1, NEG, quiet, quiet + 4))
+        x_neg = sorted(e for e in edges if e.channel == 0 and e.line == NEG)
+        edges[edges.index(x_neg[50])] = Edge(0, NEG, x_neg[50].rise, x_neg[50].fall + 2)  # type: ignore[operator]
+    elif fault in ("late", "early"):
+        edges = _shifted(edges, 1 if fault == "late" else -1)  # the latency one cycle off
+    else:
+        edges = [Edge(e.channel, 1 - e.line, e.rise, e.fall) for e in edges]  # x's lines swapped
+    _result, path, cmap, kwargs = _ternary_check(async_ternary, tmp_path, edges)
+    report = check_capture(path, cfg, capture_map=cmap, **kwargs)
+    assert report.verdict == "fail"
+    kinds = sorted((d.kind, d.channel, d.line) for d in report.discrepancies)
+    if fault == "three":
+        assert kinds == [("extra", "y", "neg"), ("missing", "x", "pos"), ("width", "x", "neg")], report.summary()
+    elif fault in ("late", "early"):
+        # The output edges contradict the strobes' times: compared at the nearest cycle, every pulse is off.
+        assert report.resolution["contradicted"] > 500
+        assert {k for k, _c, _l in kinds} == {"missing", "extra"} and len(kinds) > 1000
+    else:
+        assert {k for k, _c, _l in kinds} == {"missing", "extra"} and report.channels[0].matched == 0
+
+
+@pytest.mark.parametrize("ppm, tolerance, found", [(400.0, None, True), (3000.0, None, True),
+                                                   (150.0, "200 ppm", False)])
+def test_clock_beyond_the_tolerance_is_a_discrepancy(tmp_path: Path, ppm: float, tolerance: str | None,
+                                                     found: bool) -> None:
+    cfg = async_config("ternary", "45.5 m/s^2", "0 m/s^2")
+    bench = Bench(ppm=ppm)
+    strobe = host_strobe(1000, 20.37e-6, seed=2)
+    result = run_model(cfg.hw, async_stimulus(bench, strobe))
+    path, cmap = async_capture(tmp_path / "clock.csv", cfg, bench, strobe, list(result.edges), seed=2)
+    if tolerance:
+        cmap = cmap.merged(capture_map_from_args(clock_tolerance=tolerance))
+    report = check_capture(path, cfg, capture_map=cmap)
+    clock = [d for d in report.discrepancies if d.kind == "clock"]
+    if not found:
+        assert_matches(report, result)
+        return
+    assert report.verdict == "fail" and len(clock) == 1 and clock[0].predicted == cfg.clock_hz
+    write_report(report, tmp_path / "report")
+    assert (tmp_path / "report" / "discrepancies.csv").read_text().splitlines()[1].startswith("clock,,,")
+    if clock[0].captured is not None:
+        # Recovered: the pulses match on the emulator's own clock; the clock alone is wrong.
+        assert clock[0].captured == pytest.approx(cfg.clock_hz * (1 + ppm * 1e-6), rel=5e-6)
+        assert report.discrepancies == tuple(clock)
+        assert "beyond the clock tolerance" in clock[0].text()
+    else:
+        assert not report.clock.recovered and "do not sit on one clock grid" in report.clock.reason
+        assert "sit on no clock grid" in clock[0].text()
+
+
+def test_sampling_too_coarse_for_the_clock_uses_the_nominal_time_base(amaranth_run, tmp_path: Path) -> None:
+    cfg, stim, result, _vcd, program = amaranth_run
+    ts = 0.61e-6  # over half the emulator's clock period, under half the pulse gap
+    grid, levels = sample(truth(cfg, stim, list(result.edges)), stim.cycles / cfg.clock_hz, ts, 0.0)
+    report = check_capture(write_csv(tmp_path / "coarse.csv", grid, levels), cfg,
+                           program=load_rate_program(program, cfg))
+    assert_matches(report, result)  # the strobe is synchronous here: the nominal time base is exact
+    assert not report.clock.recovered and "half a clock period" in report.clock.reason
+    assert set(report.strobe_fixed_by) == {"nominal"}
+    assert "clock: not recovered" in report.summary()

@@ -19,7 +19,8 @@ def run(args: argparse.Namespace) -> int:
                                   clock_tolerance=args.clock_tolerance)
     program = load_rate_program(args.program, config) if args.program else None
     start = parse_time(args.program_start, "--program-start") if args.program_start else None
-    report = check_capture(args.capture, config, program=program, capture_map=base.merged(extra), program_start=start)
+    report = check_capture(args.capture, config, program=program, capture_map=base.merged(extra), program_start=start,
+                           clock_recovery=not args.no_clock_recovery)
     written = write_report(report, args.output)
     print(report.summary(), end="")
     print(f"\nwrote {len(written)} files to {args.output}")
@@ -29,9 +30,10 @@ def run(args: argparse.Namespace) -> int:
 def register(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser(
         "capture", help="check a logic-analyzer capture (VCD or CSV) of the real pins against the model",
-        description="Read a capture of the emulator's pins, drive the reference model with the capture's own "
-        "strobe edges, and report matched, missing and extra pulses, widths, gaps and latency against the "
-        "config. Exit status: 0 pass, 1 fail or inconclusive, 2 bad input. Bench procedure and safety "
+        description="Read a capture of the emulator's pins, recover the emulator's clock from its output edges, "
+        "drive the reference model with the capture's own strobe edges on that clock, and report matched, "
+        "missing and extra pulses, widths, gaps, latency and the clock against the config. Exit status: 0 "
+        "pass, 1 fail or inconclusive, 2 bad input. Bench procedure and safety "
         "cautions: docs/bench.md.",
         epilog="Never drive a computer's inputs straight from FPGA pins: isolate and level-shift, check input "
         "levels and coupling, share grounds deliberately, keep outputs idle until armed, and follow the "
@@ -53,6 +55,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="timing uncertainty of one captured edge beyond the sample period (default 0 s)")
     parser.add_argument("--clock-tolerance", metavar="PPM",
                         help="tolerance of the emulator's and analyzer's clocks together (default '100 ppm')")
+    parser.add_argument("--no-clock-recovery", action="store_true",
+                        help="compare on the nominal time base instead of the emulator's clock recovered from its "
+                        "output edges (an asynchronous strobe's cycle is then known only to within one)")
     parser.add_argument("--time-column", metavar="NAME", help="CSV: the time or sample column (default: the first)")
     parser.add_argument("--format", choices=["vcd", "csv"], help="capture format (default: from the extension)")
     parser.add_argument("-o", "--output", metavar="DIR", default="bench-report",
