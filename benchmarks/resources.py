@@ -48,6 +48,8 @@ DEVICES = {
     "hx8k": ("iCE40 HX8K", {"fixed": (None, "ice40-hx8k-breakout"), "link": (None, "ice40-hx8k-breakout")}),
 }
 VARIANTS = ("fixed", "link")
+#: Text from this line on in the output file is kept when the table is measured again.
+KEEP_MARKER = "<!-- analysis: kept when benchmarks/resources.py rewrites the table above -->"
 #: Every channel's rate in the benchmark (a constant rate of zero would fold away).
 RATE = "0.5 g"
 #: Design brief target: 16 channels on the UP5K, 48 MHz or more, at most half the cells.
@@ -236,7 +238,10 @@ def main(argv: list[str] | None = None) -> int:
     if args.output == "-":
         print(text)
     else:
-        Path(args.output).write_text(text)
+        out = Path(args.output)
+        # Hand-written analysis below the marker survives a new measurement.
+        kept = out.read_text().partition(KEEP_MARKER) if out.is_file() else ("", "", "")
+        out.write_text(text + ("\n" + KEEP_MARKER + kept[2] if kept[1] else ""))
         print(f"wrote {args.output}", file=sys.stderr)
     return 0
 
