@@ -20,7 +20,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from dvgate.config import Duration, Quantity, section
 from dvgate.errors import UserError
-from dvgate.params import EVENT_COUNT_BITS, HardwareParams
+from dvgate.params import EVENT_COUNT_BITS, IGNORE_CYCLES_BITS, STORM_PERIOD_BITS, HardwareParams
 
 if TYPE_CHECKING:
     from dvgate.config import Config
@@ -53,15 +53,17 @@ class FrameType(enum.IntEnum):
     START = 0x04
     #: Host to board: ask for a telemetry reply about one channel (not sequenced).
     TELEMETRY = 0x05
-    #: Reserved for fault-injection settings; the board rejects it as a format error
-    #: until the fault work defines its payload.
+    #: Host to board: one channel's whole fault set (sequenced).
     FAULT = 0x06
+    #: Host to board: ignore the strobes for a window of cycles (sequenced).
+    IGNORE = 0x07
     #: Board to host: the reply to :attr:`TELEMETRY`.
     TELEMETRY_REPLY = 0x85
 
 
 #: Types whose frames carry a sequence number and are applied exactly once.
-SEQUENCED = (FrameType.SEGMENT, FrameType.ARM, FrameType.DISARM, FrameType.START)
+SEQUENCED = (FrameType.SEGMENT, FrameType.ARM, FrameType.DISARM, FrameType.START, FrameType.FAULT,
+             FrameType.IGNORE)
 
 
 class Reason(enum.IntEnum):
@@ -105,6 +107,17 @@ SEQ_BITS = 16
 COUNT_BITS = EVENT_COUNT_BITS
 #: Bits of a duration; a FIFO word holds a duration and the ``last`` flag above it.
 DURATION_BITS = 32
+
+#: FAULT frame's ``set`` byte: the fault set's yes/no fields, bit 0 first (the rest must be 0).
+FAULT_SET_BITS = ("silence_pos", "silence_neg", "stuck_pos", "stuck_neg", "swap", "no_rest", "storm_neg")
+#: Bytes of a FAULT frame's ``storm_period`` (cycles; 0 is no storm).
+STORM_BYTES = (STORM_PERIOD_BITS + 7) // 8
+#: Bytes of an IGNORE frame's ``cycles``.
+IGNORE_BYTES = (IGNORE_CYCLES_BITS + 7) // 8
+#: Cycles from a FAULT or IGNORE frame's application (cycle ``e``) to the cycle its
+#: setting holds from: the link writes the emulator's port at ``e + 1``, which takes
+#: effect a cycle later (``docs/link.md``, "Faults").
+FAULT_DELAY = 2
 
 
 @dataclass(frozen=True)
@@ -233,6 +246,8 @@ class LinkParams:
             FrameType.DISARM: 2,
             FrameType.START: 2,
             FrameType.TELEMETRY: 1,
+            FrameType.FAULT: 4 + STORM_BYTES,
+            FrameType.IGNORE: 2 + IGNORE_BYTES,
             FrameType.TELEMETRY_REPLY: sum(f.size for f in self.telemetry_fields),
         }
         return lengths.get(ftype)
@@ -280,7 +295,8 @@ def telemetry_fields(owed_bytes: int) -> tuple[PayloadField, ...]:
 
 def board_lengths(link: LinkParams) -> dict[int, int]:
     """Frame types the board accepts, with the payload length each must have."""
-    types = (FrameType.SEGMENT, FrameType.ARM, FrameType.DISARM, FrameType.START, FrameType.TELEMETRY)
+    types = (FrameType.SEGMENT, FrameType.ARM, FrameType.DISARM, FrameType.START, FrameType.TELEMETRY,
+             FrameType.FAULT, FrameType.IGNORE)
     return {int(t): link.payload_len(t) for t in types}
 
 

@@ -15,6 +15,10 @@ pseudo-terminal opened the same way). It:
 
 A port that fails mid-stream (the cable pulled, the board gone) raises
 :class:`LinkLost` with a message saying so; the board then plays its underrun policy.
+
+:func:`send_settings` sets fault injection the same way, exactly once: a channel's whole
+fault set (FAULT frames) and a window of ignored strobes (an IGNORE frame);
+:func:`parse_fault_setting` and :func:`parse_ignore_window` read them as a user writes them.
 """
 
 from __future__ import annotations
@@ -24,22 +28,33 @@ from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
+from dvgate.config import CYCLE_UNITS, Quantity
 from dvgate.errors import UserError
-from dvgate.linkspec import SEQ_BITS, FrameType, LinkParams, PlayState, Reason, host_lengths
+from dvgate.linkspec import FAULT_SET_BITS, SEQ_BITS, FrameType, LinkParams, PlayState, Reason, host_lengths
+from dvgate.params import STORM_PERIOD_BITS
 from dvgate.sim.link_model import (
+    ChannelFaults,
     Frame,
     FrameDecoder,
     Segment,
     Telemetry,
     asked,
+    check_ignore,
     encode_command,
+    encode_fault,
+    encode_ignore,
     encode_segment,
     encode_telemetry_request,
     fit_segments,
     parse_telemetry,
 )
+from dvgate.sim.trace import Faults
+from dvgate.units import QuantityError, parse_quantity
+
+if TYPE_CHECKING:
+    from dvgate.config import Config
 
 _SEQ_MOD = 1 << SEQ_BITS
 _COUNT_MOD = 1 << 32
@@ -350,15 +365,190 @@ def _is_command(index: int, preload: int) -> bool:
     return index == preload
 
 
-def _deliver(board: BoardClient, frames: list[bytes], base: int) -> None:
-    """Send sequenced frames until the board's sequence number shows each applied once."""
-    for _ in range(board.retries):
-        for frame in frames:
+def _deliver(board: BoardClient, frames: list[bytes], base: int) -> tuple[Telemetry, int]:
+    """Send sequenced frames (numbered from ``base``) until the board's sequence number
+    shows each applied once; each try sends again from the first one not applied.
+
+    Returns the telemetry that showed it, and the frames sent again.
+    """
+    done = resent = 0
+    for attempt in range(board.retries):
+        if attempt:
+            resent += len(frames) - done
+        for frame in frames[done:]:
             board.send(frame)
         tm = board.telemetry(0)
-        if (tm.next_seq - base) % _SEQ_MOD >= len(frames):
-            return
+        done = (tm.next_seq - base) % _SEQ_MOD
+        if done > len(frames):
+            raise LinkLost(f"the board's sequence number moved to {tm.next_seq}, past what was sent: "
+                           "another host is talking to it")
+        if done == len(frames):
+            return tm, resent
     raise LinkLost(f"the board did not apply a command after {board.retries} tries")
+
+
+# -- fault injection ----------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class SettingsReport:
+    """What :func:`send_settings` did.
+
+    Attributes
+    ----------
+    faults : tuple of ChannelFaults
+        Fault sets applied, in order.
+    ignore : int or None
+        Cycles of the ignore window applied.
+    first_seq : int
+        Sequence number of the first frame (the others follow).
+    resent : int
+        Frames sent again because the board had not applied them.
+    telemetry : Telemetry
+        The board's telemetry (channel 0) that showed every frame applied.
+    """
+
+    faults: tuple[ChannelFaults, ...]
+    ignore: int | None
+    first_seq: int
+    resent: int
+    telemetry: Telemetry
+
+    def seq(self, index: int) -> int:
+        """Sequence number of the ``index``-th frame sent (the ignore window's comes last)."""
+        return (self.first_seq + index) % _SEQ_MOD
+
+
+def send_settings(port: Port, link: LinkParams, faults: Sequence[ChannelFaults] = (), ignore: int | None = None, *,
+                  reply_timeout: float = 1.0) -> SettingsReport:
+    """Set fault injection on the board behind ``port``, each setting applied exactly once.
+
+    Reads the board's next sequence number, sends a FAULT frame for each fault set, in
+    order, then an IGNORE frame for the window, and sends again from the first one the
+    board did not apply until its sequence number shows them all applied (a frame is
+    never applied twice: a repeat carries a number the board no longer expects). The
+    board writes each setting to the emulator two cycles after applying its frame
+    (``docs/link.md``, "Faults"). Playback, arming and the books are untouched.
+
+    Parameters
+    ----------
+    port : Port
+        The open serial port.
+    link : LinkParams
+        The board's link.
+    faults : sequence of ChannelFaults
+        Whole fault sets, each replacing its channel's set.
+    ignore : int, optional
+        Strobes detected in this many cycles from the window's start are not taken.
+    reply_timeout : float
+        Seconds to wait for a telemetry reply.
+
+    Raises
+    ------
+    ValueError
+        For a setting the board would refuse (a channel it does not have, an empty window).
+    LinkLost
+        When the port fails or the board stops answering.
+    """
+    if not faults and ignore is None:
+        raise ValueError("nothing to send: give a fault set or an ignore window")
+    board = BoardClient(port, link, reply_timeout=reply_timeout)
+    base = board.telemetry(0).next_seq
+    frames = [encode_fault((base + k) % _SEQ_MOD, setting, link) for k, setting in enumerate(faults)]
+    if ignore is not None:
+        frames.append(encode_ignore((base + len(frames)) % _SEQ_MOD, ignore))
+    tm, resent = _deliver(board, frames, base)
+    return SettingsReport(tuple(faults), ignore, base, resent, tm)
+
+
+def channel_index(config: Config, text: str) -> int:
+    """A channel named by its name in the config or by its index (``CHANNEL``)."""
+    names = [c.name for c in config.channels]
+    if text in names:
+        return names.index(text)
+    if text.isdigit() and int(text) < len(names):
+        return int(text)
+    raise UserError(f"CHANNEL = {text!r}: allowed: a channel name ({', '.join(names)}) "
+                    f"or an index 0 to {len(names) - 1}")
+
+
+#: Words of a fault setting: the yes/no fields, ``storm=PERIOD``, or ``none``.
+FAULT_WORDS = (*FAULT_SET_BITS, "storm=PERIOD", "none")
+
+
+def _duration_cycles(config: Config, field: str, text: str) -> int:
+    """A duration written with its unit (or in cycles) as whole clock cycles, at least 1."""
+    try:
+        value, unit = parse_quantity(text, "time", extra_units=CYCLE_UNITS)
+    except QuantityError as error:
+        raise UserError(f"{field} = {text!r}: {error}") from None
+    if unit in CYCLE_UNITS and value != int(value):
+        raise UserError(f"{field} = {text!r}: allowed: a whole number of cycles")
+    return config.cycles(field, Quantity(value, unit, text))
+
+
+def parse_fault_setting(config: Config, channel: str, words: Sequence[str]) -> ChannelFaults:
+    """A channel's whole fault set as a user writes it: ``CHANNEL [WORD ...]``.
+
+    Each word is one of :data:`FAULT_WORDS`: a yes/no field of the fault set
+    (``silence_pos``, ``swap``, ...; ``-`` may stand for ``_``), ``storm=PERIOD`` with a
+    duration such as ``"50 us"`` or ``"80 cycles"`` (extra pulses, one pulse width
+    long, every period), or ``none`` alone (or no word): no fault on the channel.
+
+    Raises
+    ------
+    UserError
+        Naming the word, its value and what is allowed.
+    """
+    index = channel_index(config, channel)
+    fields: dict[str, bool | int] = {}
+    width = config.hw.width_cyc
+    limit = (1 << STORM_PERIOD_BITS) - 1
+    for raw in words:
+        word = raw.strip().replace("-", "_")
+        key, _, value = word.partition("=")
+        if word == "none":
+            if len(words) > 1:
+                raise UserError(f"fault setting {raw!r}: 'none' clears every fault and stands alone")
+        elif key in FAULT_SET_BITS and not value:
+            fields[key] = True
+        elif key in ("storm", "storm_period") and value:
+            period = _duration_cycles(config, "storm", value)
+            if period <= width:
+                raise UserError(f"storm = {value!r} ({period} cycles): allowed: more than the pulse width "
+                                f"({width} cycles; a shorter period holds the line active: use stuck_pos or stuck_neg)")
+            if period > limit:
+                raise UserError(f"storm = {value!r} ({period} cycles): allowed: at most {limit} cycles "
+                                f"({limit / config.clock_hz:.6g} s at this clock)")
+            fields["storm_period"] = period
+        else:
+            raise UserError(f"fault setting {raw!r}: allowed: {', '.join(FAULT_WORDS)}")
+    if fields.get("storm_neg") and not fields.get("storm_period"):
+        raise UserError("fault setting 'storm_neg': it puts the storm on the negative line; give storm=PERIOD too")
+    return ChannelFaults(index, Faults(**fields))
+
+
+def parse_ignore_window(config: Config, text: str) -> int:
+    """An ignore window's length as a user writes it (``"5 ms"``, ``"1200 cycles"``), in cycles.
+
+    Raises
+    ------
+    UserError
+        Naming the value and what is allowed.
+    """
+    cycles = _duration_cycles(config, "--ignore-strobes", text)
+    try:
+        check_ignore(cycles)
+    except ValueError as error:
+        raise UserError(f"--ignore-strobes = {text!r}: {error}") from None
+    return cycles
+
+
+def describe_faults(faults: Faults) -> str:
+    """A fault set in words, for reports."""
+    words = [name for name in FAULT_SET_BITS if name != "storm_neg" and getattr(faults, name)]
+    if faults.storm_period:
+        words.append(f"storm every {faults.storm_period} cycles on the {'neg' if faults.storm_neg else 'pos'} line")
+    return ", ".join(words) or "no fault"
 
 
 @contextmanager
@@ -401,5 +591,6 @@ def load_stream_program(path: str | Path, config) -> tuple[list[Segment], int]: 
     return program_segments(program, link_params(config))
 
 
-__all__ = ["BoardClient", "ChannelCheck", "LinkLost", "StreamReport", "load_stream_program", "open_port",
-           "program_segments", "progress_bar", "stream"]
+__all__ = ["FAULT_WORDS", "BoardClient", "ChannelCheck", "LinkLost", "SettingsReport", "StreamReport",
+           "channel_index", "describe_faults", "load_stream_program", "open_port", "parse_fault_setting",
+           "parse_ignore_window", "program_segments", "progress_bar", "send_settings", "stream"]

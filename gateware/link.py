@@ -4,25 +4,34 @@ Rules: ``docs/link.md``. Between the UART receiver and transmitter sit the frame
 decoder and encoder; this component reads each frame's payload as it arrives, checks
 its fields, its sequence number and the FIFO's room, and applies it only when the
 whole frame is good. The pure-Python twin is ``dvgate.sim.link_model.LinkModel``.
+
+A FAULT or IGNORE frame applied at cycle ``e`` drives the emulator's fault port (or its
+ignore port) at ``e + 1``, from registers, so its setting holds from ``e + 2``.
 """
 
 from amaranth.hdl import Cat, Module, Signal, signed, unsigned
 from amaranth.lib import data, stream, wiring
 from amaranth.lib.wiring import In, Out
 
+from dvgate.gateware.faults import FaultLayout
 from dvgate.gateware.frame_rx import REASON_BITS, FrameDecoder
 from dvgate.gateware.frame_tx import FrameEncoder
+from dvgate.gateware.rates import addr_bits
 from dvgate.gateware.uart_rx import RxByte
 from dvgate.linkspec import (
     COUNT_BITS,
     DURATION_BITS,
+    FAULT_SET_BITS,
+    IGNORE_BYTES,
     SEG_LAST,
     SEQ_BITS,
+    STORM_BYTES,
     FrameType,
     LinkParams,
     Reason,
     board_lengths,
 )
+from dvgate.params import IGNORE_CYCLES_BITS, STORM_PERIOD_BITS
 
 _COUNT_MAX = (1 << COUNT_BITS) - 1
 
@@ -39,8 +48,9 @@ class HostLink(wiring.Component):
 
     A frame is applied on the cycle its decoder ends it, and only when its CRC matched,
     every field is in range (segment flags, duration of at least ``min_duration``, rates
-    that fit the rate register, a channel that exists), its sequence number is the one
-    expected (segments and commands), the FIFO had room when its payload began
+    that fit the rate register, a channel that exists, no unknown fault bit, an ignore
+    window of at least one cycle), its sequence number is the one expected (segments,
+    commands, fault settings), the FIFO had room when its payload began
     (segments), and no telemetry reply is still in its busy time (telemetry requests).
     Anything else is counted under one :class:`dvgate.linkspec.Reason` and has no effect.
 
@@ -66,8 +76,14 @@ class HostLink(wiring.Component):
     tm : telemetry_layout(link), in
         The board's telemetry as it stands; the link fills its own fields itself
         (``next_seq``, ``accepted``, the rejection counters and ``channel``).
+    fault_addr, fault_data, fault_we : out
+        The emulator's fault port: an applied FAULT frame's channel and whole fault set,
+        written (``fault_we``) on the cycle after the frame is applied.
+    ignore_we, ignore_cycles : out
+        The emulator's ignore port: an applied IGNORE frame's window, written on the cycle
+        after the frame is applied.
     next_seq : Signal(16), out
-        Sequence number the next segment or command must carry.
+        Sequence number the next segment, command or fault setting must carry.
     accepted : Signal(32), out
         Frames applied (wraps).
     rejected : ArrayLayout(16, 8), out
@@ -92,11 +108,19 @@ class HostLink(wiring.Component):
             "stop": Out(1),
             "tm_channel": Out(8),
             "tm": In(self._layout),
+            "fault_addr": Out(addr_bits(link.hw)),
+            "fault_data": Out(FaultLayout),
+            "fault_we": Out(1),
+            "ignore_we": Out(1),
+            "ignore_cycles": Out(IGNORE_CYCLES_BITS),
             "next_seq": Out(SEQ_BITS),
             "accepted": Out(32),
             "rejected": Out(data.ArrayLayout(COUNT_BITS, len(Reason))),
             "reject_stb": Out(1),
         })
+        # The arguments of FAULT and IGNORE frames are shifted into the duration's register.
+        if 8 * max(2 + STORM_BYTES, IGNORE_BYTES) > DURATION_BITS:
+            raise ValueError("the FAULT and IGNORE arguments must fit the duration register")
         self.decoder = FrameDecoder(board_lengths(link), link.timeout_cyc)
         self.encoder = FrameEncoder(link.payload_len(FrameType.TELEMETRY_REPLY), pad_to=link.reply_bytes)
 
@@ -130,8 +154,18 @@ class HostLink(wiring.Component):
         ftype    = dec.type
         is_seg   = ftype == FrameType.SEGMENT
         is_tm    = ftype == FrameType.TELEMETRY
-        is_seq   = is_seg | ftype.matches(FrameType.ARM, FrameType.DISARM, FrameType.START)
+        is_fault = ftype == FrameType.FAULT
+        is_ign   = ftype == FrameType.IGNORE
+        is_seq   = is_seg | ftype.matches(FrameType.ARM, FrameType.DISARM, FrameType.START,
+                                          FrameType.FAULT, FrameType.IGNORE)
         dur_full = Cat(dur[8:], value)
+        # A FAULT frame's channel, set byte and storm period, and an IGNORE frame's cycles,
+        # end in the top bytes of ``dur`` (shifted in from payload byte 2 on).
+        f_base   = DURATION_BITS - 8 * (2 + STORM_BYTES)
+        f_chan   = dur[f_base: f_base + 8]
+        f_set    = dur[f_base + 8: f_base + 16]
+        f_storm  = dur[f_base + 16:]
+        i_cycles = dur[DURATION_BITS - 8 * IGNORE_BYTES:]
         acc_full = Cat(acc[8:], value)
         top      = acc_full[rate_bits - 1:]
 
@@ -165,6 +199,24 @@ class HostLink(wiring.Component):
                             m.d.sync += bad.eq(1)
                     with m.Else():
                         m.d.sync += sub.eq(sub + 1)
+            with m.If((is_fault | is_ign) & (idx >= 2)):
+                m.d.sync += dur.eq(dur_full)
+            with m.If(is_fault):
+                with m.If((idx == 2) & (value >= hw.n)):
+                    m.d.sync += bad.eq(1)
+                with m.If((idx == 3) & ((value >> len(FAULT_SET_BITS)) != 0)):
+                    m.d.sync += bad.eq(1)
+                if 8 * STORM_BYTES > STORM_PERIOD_BITS:
+                    storm_full = dur_full[DURATION_BITS - 8 * STORM_BYTES:]
+                    with m.If((idx == 3 + STORM_BYTES) & ((storm_full >> STORM_PERIOD_BITS) != 0)):
+                        m.d.sync += bad.eq(1)
+            with m.If(is_ign & (idx == 1 + IGNORE_BYTES)):
+                cycles_full = dur_full[DURATION_BITS - 8 * IGNORE_BYTES:]
+                with m.If(cycles_full == 0):
+                    m.d.sync += bad.eq(1)
+                if 8 * IGNORE_BYTES > IGNORE_CYCLES_BITS:
+                    with m.If((cycles_full >> IGNORE_CYCLES_BITS) != 0):
+                        m.d.sync += bad.eq(1)
 
         # -- end of a frame: apply it, or count why not ------------------------------------
         with m.If(busy != 0):
@@ -190,6 +242,19 @@ class HostLink(wiring.Component):
             self.arm_on.eq(apply & (ftype == FrameType.ARM)),
             self.stop.eq(apply & (ftype == FrameType.DISARM)),
         ]
+        # The fault and ignore ports: strobes from registers, data straight from ``dur``,
+        # which no payload byte changes on the cycle after a frame ends.
+        m.d.sync += [
+            self.fault_we.eq(apply & is_fault),
+            self.ignore_we.eq(apply & is_ign),
+        ]
+        m.d.comb += [
+            self.fault_addr.eq(f_chan),
+            self.fault_data.storm_period.eq(f_storm),
+            self.ignore_cycles.eq(i_cycles),
+        ]
+        for bit, name in enumerate(FAULT_SET_BITS):
+            m.d.comb += getattr(self.fault_data, name).eq(f_set[bit])
         with m.If(count):
             for r in Reason:
                 with m.If((reason == r) & (self.rejected[r] != _COUNT_MAX)):

@@ -1,4 +1,4 @@
-"""The emulator with its host link: UART, frames, segment FIFO and player, telemetry.
+"""The emulator with its host link: UART, frames, segment FIFO and player, fault settings, telemetry.
 
 Ports: the emulator's strobe and outputs, an arm pin, the serial pins and status lines
 for LEDs. Rules: ``docs/link.md`` (the link) and ``docs/timing.md`` (the emulator).
@@ -23,7 +23,7 @@ PULSE_COUNT_BITS = 32
 
 
 class LinkedTop(wiring.Component):
-    """:class:`~dvgate.gateware.top.Emulator` fed by segments over a UART.
+    """:class:`~dvgate.gateware.top.Emulator` fed by segments and fault settings over a UART.
 
     The outputs are armed when the host has armed them *and* the ``arm`` pin is high
     (tie it high on a board without an arm switch). Each output line's pulses are
@@ -107,6 +107,11 @@ class LinkedTop(wiring.Component):
             emu.rate_data.eq(player.rate_data),
             emu.rate_we.eq(player.rate_we),
             emu.rate_commit.eq(player.rate_commit),
+            emu.fault_addr.eq(host.fault_addr),
+            emu.fault_data.eq(host.fault_data),
+            emu.fault_we.eq(host.fault_we),
+            emu.ignore_we.eq(host.ignore_we),
+            emu.ignore_cycles.eq(host.ignore_cycles),
             self.armed.eq(player.arm & self.arm),
             self.playing.eq(player.play != 0),
             self.starved.eq(player.play == 2),

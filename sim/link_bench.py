@@ -2,8 +2,9 @@
 
 The testbench drives the serial pin bit by bit (8N1, ``bit_cyc`` cycles per bit) and
 the strobe pin, and records every output edge, every change of the live rates and of
-the arm input, and the bytes the board sends back (decoded from its serial pin). The
-result holds plain Python data, for comparison with ``dvgate.sim.link_model``.
+the arm input, every write of the emulator's fault and ignore ports, and the bytes the
+board sends back (decoded from its serial pin). The result holds plain Python data, for
+comparison with ``dvgate.sim.link_model``.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from amaranth.hdl import Module, Signal
+from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
 from dvgate.gateware.linked_top import LinkedTop
@@ -41,7 +43,13 @@ class LinkedRun:
         ``(cycle, byte)``: bytes the board sent, with the cycle their start bit fell.
     status : dict
         Link and player registers at the end: ``next_seq``, ``accepted``, ``rejected``
-        (by :class:`Reason`), ``play``, ``level``, ``played``, ``underruns``, ``armed``.
+        (by :class:`Reason`), ``play``, ``level``, ``played``, ``underruns``, ``armed``,
+        and the emulator's ``ignored`` counter.
+    faults : tuple of (int, int, int)
+        ``(cycle, channel, bits)``: each write of the emulator's fault port, with the
+        cycle the set holds from and the packed :class:`~dvgate.gateware.faults.FaultLayout`.
+    ignores : tuple of (int, int)
+        ``(cycle, length)``: each write of the ignore port, with the cycle its window starts.
     """
 
     cycles: int
@@ -50,6 +58,8 @@ class LinkedRun:
     arm: tuple[tuple[int, int], ...]
     tx: tuple[tuple[int, int], ...]
     status: dict
+    faults: tuple[tuple[int, int, int], ...] = ()
+    ignores: tuple[tuple[int, int], ...] = ()
 
 
 def _rates_of(hw: HardwareParams):  # noqa: ANN202 - returns a small closure
@@ -64,6 +74,37 @@ def _rates_of(hw: HardwareParams):  # noqa: ANN202 - returns a small closure
         return tuple(out)
 
     return split
+
+
+def _port_writes(m: Module, ports: wiring.Component, cycle: Signal) -> tuple:
+    """Latch each write of the fault and ignore ports, so a watcher wakes once per write.
+
+    ``ports`` has ``fault_we``, ``fault_addr``, ``fault_data``, ``ignore_we`` and
+    ``ignore_cycles`` (the host link's outputs or the emulator's inputs). Returns the
+    watcher processes and the lists they fill: ``(cycle, channel, bits)`` with the cycle
+    a fault set holds from, and ``(cycle, length)`` with the cycle a window starts.
+    """
+    f_count, f_addr, f_data = Signal(16), Signal.like(ports.fault_addr), Signal(len(ports.fault_data.as_value()))
+    i_count, i_cycles = Signal(16), Signal.like(ports.ignore_cycles)
+    with m.If(ports.fault_we):
+        m.d.sync += [f_count.eq(f_count + 1), f_addr.eq(ports.fault_addr), f_data.eq(ports.fault_data.as_value())]
+    with m.If(ports.ignore_we):
+        m.d.sync += [i_count.eq(i_count + 1), i_cycles.eq(ports.ignore_cycles)]
+    faults: list[tuple[int, int, int]] = []
+    ignores: list[tuple[int, int]] = []
+
+    # The latches change on the edge after the write: ``at`` is the first cycle it holds.
+    async def watch_faults(ctx) -> None:
+        async for _, addr, bits, at in ctx.changed(f_count).sample(f_addr, f_data, cycle):
+            if at:  # the first wake-up, at cycle 0, gives the values at reset
+                faults.append((at, addr, bits))
+
+    async def watch_ignores(ctx) -> None:
+        async for _, length, at in ctx.changed(i_count).sample(i_cycles, cycle):
+            if at:
+                ignores.append((at, length))
+
+    return (watch_faults, watch_ignores), faults, ignores
 
 
 def wire_levels(wire: Sequence[WireByte], bit_cyc: int) -> list[tuple[int, int]]:
@@ -165,6 +206,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
     arm_changes: list[tuple[int, int]] = []
     tx_changes: list[tuple[int, int]] = []
     status: dict = {}
+    watchers, fault_writes, ignore_writes = _port_writes(m, top.emulator, cycle)
 
     async def drive(ctx) -> None:
         ctx.set(top.arm, arm_pin)
@@ -189,6 +231,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
             underruns=ctx.get(player.underruns),
             armed=ctx.get(player.arm),
             counts=[(ctx.get(p), ctx.get(q)) for p, q in top.counters],
+            ignored=ctx.get(top.emulator.ignored),
         )
 
     async def watch_outputs(ctx) -> None:
@@ -210,7 +253,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
     sim = Simulator(m)
     sim.add_clock(1e-6)
     sim.add_testbench(drive)
-    for proc in (watch_outputs, watch_rates, watch_arm, watch_tx):
+    for proc in (watch_outputs, watch_rates, watch_arm, watch_tx, *watchers):
         sim.add_process(proc)
     if vcd_path is not None:
         with sim.write_vcd(str(vcd_path)):
@@ -226,6 +269,8 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
         arm=tuple(arm_changes),
         tx=tuple(decode_line(tx_changes, link.bit_cyc)),
         status=status,
+        faults=tuple(fault_writes),
+        ignores=tuple(ignore_writes),
     )
 
 
@@ -246,7 +291,10 @@ class LinkBytesRun:
     replies : tuple of bytes
         Frames the encoder sent, split at the flag bytes.
     status : dict
-        As :attr:`LinkedRun.status`.
+        As :attr:`LinkedRun.status` (without the emulator's fields).
+    faults, ignores : tuple
+        The link's fault and ignore port writes, as :attr:`LinkedRun.faults` and
+        :attr:`LinkedRun.ignores`.
     """
 
     rejections: tuple[tuple[int, Reason], ...]
@@ -255,6 +303,8 @@ class LinkBytesRun:
     arm: tuple[tuple[int, int], ...]
     replies: tuple[bytes, ...]
     status: dict
+    faults: tuple[tuple[int, int, int], ...] = ()
+    ignores: tuple[tuple[int, int], ...] = ()
 
 
 def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], cycles: int) -> LinkBytesRun:
@@ -303,6 +353,7 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
         m.d.sync += [out_count.eq(out_count + 1), out_byte.eq(host.o.payload)]
     live = regs.rates.as_value()
     split = _rates_of(hw)
+    watchers, fault_writes, ignore_writes = _port_writes(m, host, cycle)
 
     rejections: list[tuple[int, Reason]] = []
     applied: list[int] = []
@@ -371,10 +422,11 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
     sim = Simulator(m)
     sim.add_clock(1e-6)
     sim.add_testbench(drive)
-    for proc in (watch_outcomes, watch_rates, watch_arm, watch_out):
+    for proc in (watch_outcomes, watch_rates, watch_arm, watch_out, *watchers):
         sim.add_process(proc)
     sim.run()
     if status.get("cycle") != cycles:
         raise RuntimeError(f"simulation ended at cycle {status.get('cycle')}, not {cycles}")
     replies = tuple(b"\x7e" + part for part in bytes(sent).split(b"\x7e")[1:])
-    return LinkBytesRun(tuple(rejections), tuple(applied), tuple(rate_changes), tuple(arm_changes), replies, status)
+    return LinkBytesRun(tuple(rejections), tuple(applied), tuple(rate_changes), tuple(arm_changes), replies, status,
+                        tuple(fault_writes), tuple(ignore_writes))

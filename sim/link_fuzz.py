@@ -1,7 +1,8 @@
 """Fuzz traffic for the host link, and the checks its result must pass.
 
-A simulated host streams a list of commanded segments and commands with sequence
-numbers, as the streamer does, but through a hostile line: bits flipped, frames cut
+A simulated host streams a list of commanded segments, commands and fault settings
+(FAULT and IGNORE frames) with sequence numbers, as the streamer does, but through a
+hostile line: bits flipped, frames cut
 short, repeated, lost, stray bytes between frames, and pauses longer than the board's
 timeout in the middle of frames. After each burst the host learns the board's next
 sequence number (the streamer reads it from the telemetry) and sends again from there.
@@ -10,9 +11,9 @@ The traffic is generated against :class:`~dvgate.sim.link_model.LinkModel`; the 
 bytes, at the same cycles, can then be replayed into the gateware
 (:func:`dvgate.sim.link_bench.run_link_bytes`) and the two compared. :func:`check`
 states the reliability properties: no corrupted frame applied, every commanded
-segment and command applied exactly once and in order (so no velocity lost or
-doubled), and every frame that arrived and was not applied covered by a counted
-rejection. Pure Python: no Amaranth.
+segment, command and fault setting applied exactly once and in order (so no velocity
+lost or doubled, no fault set skipped or set twice), and every frame that arrived and
+was not applied covered by a counted rejection. Pure Python: no Amaranth.
 """
 
 from __future__ import annotations
@@ -22,15 +23,20 @@ from bisect import bisect_right
 from collections import Counter
 from dataclasses import dataclass, field
 
-from dvgate.linkspec import FrameType, LinkParams
+from dvgate.linkspec import FAULT_SET_BITS, FrameType, LinkParams
+from dvgate.params import STORM_PERIOD_BITS
 from dvgate.sim.link_model import (
+    ChannelFaults,
     LinkModel,
     Segment,
     asked,
     encode_command,
+    encode_fault,
+    encode_ignore,
     encode_segment,
     encode_telemetry_request,
 )
+from dvgate.sim.trace import Faults
 
 MUTATIONS = ("clean", "flip", "truncate", "timeout", "repeat", "drop", "garbage", "line")
 
@@ -54,6 +60,9 @@ class FuzzSettings:
         Chance of a telemetry request before each frame.
     max_duration : int
         Longest commanded segment, cycles (the shortest is the link's minimum).
+    faults : float
+        Chance of a fault setting (a FAULT frame, or one time in four an IGNORE frame)
+        among the commanded items, before each segment.
     """
 
     segments: int = 200
@@ -64,6 +73,7 @@ class FuzzSettings:
     burst: int = 8
     telemetry: float = 0.05
     max_duration: int = 80
+    faults: float = 0.03
 
 
 @dataclass
@@ -88,7 +98,7 @@ class FuzzResult:
     arrivals: list[tuple[int, int, int]]
     cycles: int
     model: LinkModel
-    commanded: list[tuple[FrameType, Segment | None]]
+    commanded: list[Item]
     instances: list[Instance]
     mutations: Counter = field(default_factory=Counter)
     bursts: int = 0
@@ -116,15 +126,33 @@ def _random_segment(rng: random.Random, link: LinkParams, max_duration: int, las
     return Segment(duration, tuple(rates), last)
 
 
-def _commanded(rng: random.Random, link: LinkParams, settings: FuzzSettings) -> list[tuple[FrameType, Segment | None]]:
-    """Segments with a START after the first two and an ARM now and then after it.
+#: A commanded item: a frame type and what it carries (a segment, a fault setting, the
+#: cycles of an ignore window, or nothing for a command).
+Item = tuple[FrameType, Segment | ChannelFaults | int | None]
+
+
+def _random_setting(rng: random.Random, link: LinkParams) -> Item:
+    """A FAULT frame's setting (random fields), or one time in four an IGNORE window."""
+    if rng.random() < 0.25:
+        return FrameType.IGNORE, rng.choice((1, rng.randint(1, 500), (1 << 32) - 1))
+    fields = {name: rng.random() < 0.25 for name in FAULT_SET_BITS}
+    storm = rng.choice((0, 0, rng.randint(1, 40), (1 << STORM_PERIOD_BITS) - 1))
+    return FrameType.FAULT, ChannelFaults(rng.randrange(link.n), Faults(storm_period=storm, **fields))
+
+
+def _commanded(rng: random.Random, link: LinkParams, settings: FuzzSettings) -> list[Item]:
+    """Segments with a START after the first two, an ARM now and then after it, and fault
+    settings now and then anywhere.
 
     No DISARM (it drops queued segments by design) and no ARM before the START (it would
     arm the outputs at the config's initial rates): the commanded velocity is then
-    exactly the segments'.
+    exactly the segments'. Fault settings act on the outputs and the rest pulses, never
+    on the player.
     """
-    items: list[tuple[FrameType, Segment | None]] = []
+    items: list[Item] = []
     for index in range(settings.segments):
+        if rng.random() < settings.faults:
+            items.append(_random_setting(rng, link))
         items.append((FrameType.SEGMENT, _random_segment(rng, link, settings.max_duration, False)))
         if index == 1:
             items.append((FrameType.START, None))
@@ -133,10 +161,14 @@ def _commanded(rng: random.Random, link: LinkParams, settings: FuzzSettings) -> 
     return items
 
 
-def _encode(link: LinkParams, seq: int, item: tuple[FrameType, Segment | None]) -> bytes:
-    ftype, segment = item
+def _encode(link: LinkParams, seq: int, item: Item) -> bytes:
+    ftype, what = item
     if ftype == FrameType.SEGMENT:
-        return encode_segment(seq, segment, link)
+        return encode_segment(seq, what, link)
+    if ftype == FrameType.FAULT:
+        return encode_fault(seq, what, link)
+    if ftype == FrameType.IGNORE:
+        return encode_ignore(seq, what)
     return encode_command(ftype, seq)
 
 
@@ -260,6 +292,14 @@ def check(result: FuzzResult) -> Check:
         applied_first.add(frame.first)
     if applied_seq != list(range(len(result.commanded))):
         order.append(f"applied sequence numbers {applied_seq[:20]}... are not 0..{len(result.commanded) - 1}")
+    # Fault settings: each commanded one reaches the emulator's ports once, in order.
+    want_faults = [what for kind, what in result.commanded if kind == FrameType.FAULT]
+    got_faults = [ChannelFaults(c.channel, c.faults) for c in model.fault_changes]
+    if got_faults != want_faults:
+        order.append(f"{len(got_faults)} fault settings applied of {len(want_faults)} commanded, or not in order")
+    want_ignores = [what for kind, what in result.commanded if kind == FrameType.IGNORE]
+    if [length for _, length in model.ignore_windows] != want_ignores:
+        order.append(f"{len(model.ignore_windows)} ignore windows applied of {len(want_ignores)} commanded")
     # Every frame that arrived and was not applied lies within a counted rejection.
     spans = [(a, b) for a, b in model.decoder.spans]
     spans += [(r.first, r.last) for r in model.rejections if r.by_link]

@@ -3,14 +3,15 @@
 Two jobs, one source of truth (``docs/link.md``):
 
 - **Codec** (used by the streamer): CRC-16/CCITT-FALSE, byte stuffing, frames for
-  segments, commands and telemetry requests, and a byte-by-byte :class:`FrameDecoder`
-  that reads the board's replies.
+  segments, commands, fault settings and telemetry requests, and a byte-by-byte
+  :class:`FrameDecoder` that reads the board's replies.
 - **Reference model** of the link on the board: the same decoder with the board's
   inter-byte timeout, the command layer (sequence numbers, FIFO room, the busy time of
   the telemetry reply), and the segment player (:class:`PlayerModel`) with its exact
   cycle rules. :class:`LinkModel` turns the bytes the board receives, with the cycle
-  each one arrives, into the rate changes and arm changes the emulator's model
-  (:func:`dvgate.sim.model.run_model`) takes: :func:`link_stimulus`.
+  each one arrives, into the rate changes, arm changes, fault changes and ignore
+  windows the emulator's model (:func:`dvgate.sim.model.run_model`) takes:
+  :meth:`LinkModel.stimulus` (:func:`link_stimulus`).
 
 Like every model here, it imports neither Amaranth nor the gateware.
 """
@@ -24,12 +25,16 @@ from dvgate.linkspec import (
     BITS_PER_BYTE,
     ESC,
     ESC_XOR,
+    FAULT_DELAY,
+    FAULT_SET_BITS,
     FLAG,
     FLAG_BITS,
+    IGNORE_BYTES,
     SEG_LAST,
     SEQ_BITS,
     SEQUENCED,
     STATE_BITS,
+    STORM_BYTES,
     FrameType,
     LinkParams,
     PlayState,
@@ -37,7 +42,8 @@ from dvgate.linkspec import (
     board_lengths,
     host_lengths,
 )
-from dvgate.sim.trace import RateChange, Stimulus
+from dvgate.params import IGNORE_CYCLES_BITS
+from dvgate.sim.trace import FaultChange, Faults, RateChange, Stimulus
 
 _SEQ_MASK = (1 << SEQ_BITS) - 1
 _COUNT_MAX = 0xFFFF
@@ -143,6 +149,74 @@ def encode_command(ftype: FrameType, seq: int) -> bytes:
 def encode_telemetry_request(channel: int) -> bytes:
     """A telemetry request for one channel."""
     return encode_frame(FrameType.TELEMETRY, bytes((channel,)))
+
+
+@dataclass(frozen=True)
+class ChannelFaults:
+    """A FAULT frame's setting: ``channel`` gets the whole fault set ``faults``."""
+
+    channel: int
+    faults: Faults
+
+
+def fault_payload(seq: int, setting: ChannelFaults, link: LinkParams) -> bytes:
+    """Payload of a FAULT frame: seq, channel, the set byte, the storm period, little-endian.
+
+    Raises
+    ------
+    ValueError
+        For a channel the board does not have (the board would refuse the frame).
+    """
+    if not 0 <= setting.channel < link.n:
+        raise ValueError(f"fault channel {setting.channel}; allowed: 0 to {link.n - 1}")
+    faults = setting.faults
+    bits = sum(1 << bit for bit, name in enumerate(FAULT_SET_BITS) if getattr(faults, name))
+    return ((seq & _SEQ_MASK).to_bytes(2, "little") + bytes((setting.channel, bits))
+            + faults.storm_period.to_bytes(STORM_BYTES, "little"))
+
+
+def encode_fault(seq: int, setting: ChannelFaults, link: LinkParams) -> bytes:
+    """A FAULT frame, ready to send."""
+    return encode_frame(FrameType.FAULT, fault_payload(seq, setting, link))
+
+
+def parse_fault(payload: bytes, link: LinkParams) -> tuple[int, ChannelFaults | None]:
+    """Sequence number and setting of a FAULT payload (None when a field is out of range)."""
+    seq = int.from_bytes(payload[0:2], "little")
+    channel, bits = payload[2], payload[3]
+    storm = int.from_bytes(payload[4: 4 + STORM_BYTES], "little")
+    if channel >= link.n or bits >> len(FAULT_SET_BITS):
+        return seq, None
+    try:
+        faults = Faults(storm_period=storm, **{name: bool(bits >> bit & 1) for bit, name in enumerate(FAULT_SET_BITS)})
+    except ValueError:  # a storm period too wide for the fault stage
+        return seq, None
+    return seq, ChannelFaults(channel, faults)
+
+
+def check_ignore(cycles: int) -> None:
+    """Refuse an ignore window the board would reject as a format error."""
+    limit = (1 << min(IGNORE_CYCLES_BITS, 8 * IGNORE_BYTES)) - 1
+    if not isinstance(cycles, int) or not 1 <= cycles <= limit:
+        raise ValueError(f"ignore window of {cycles!r} cycles; allowed: 1 to {limit} cycles")
+
+
+def encode_ignore(seq: int, cycles: int) -> bytes:
+    """An IGNORE frame: strobes detected in the ``cycles`` cycles from the one it holds are not taken."""
+    check_ignore(cycles)
+    return encode_frame(FrameType.IGNORE, (seq & _SEQ_MASK).to_bytes(2, "little")
+                        + cycles.to_bytes(IGNORE_BYTES, "little"))
+
+
+def parse_ignore(payload: bytes) -> tuple[int, int | None]:
+    """Sequence number and window length of an IGNORE payload (None when out of range)."""
+    seq = int.from_bytes(payload[0:2], "little")
+    cycles = int.from_bytes(payload[2: 2 + IGNORE_BYTES], "little")
+    try:
+        check_ignore(cycles)
+    except ValueError:
+        return seq, None
+    return seq, cycles
 
 
 # -- telemetry --------------------------------------------------------------------------
@@ -613,7 +687,11 @@ class PlayerModel:
 
 @dataclass(frozen=True)
 class Applied:
-    """A frame the board applied, at ``cycle`` (``seq`` None for a telemetry request)."""
+    """A frame the board applied, at ``cycle`` (``seq`` None for a telemetry request).
+
+    ``channel`` is that of a telemetry request or a fault setting; ``faults`` the setting
+    of a FAULT frame, ``ignore`` the window length of an IGNORE frame.
+    """
 
     cycle: int
     type: int
@@ -621,6 +699,8 @@ class Applied:
     segment: Segment | None = None
     channel: int | None = None
     frame: Frame | None = None
+    faults: Faults | None = None
+    ignore: int | None = None
 
 
 @dataclass
@@ -654,6 +734,11 @@ class LinkModel:
     replies : list of (int, dict)
         For each telemetry request applied: its cycle and the link's fields of the reply
         (those the link model knows; the emulator's come from its own model).
+    fault_changes : list of FaultChange
+        Each FAULT frame applied at cycle ``e``, as the emulator's stimulus: the channel's
+        set holds from ``e + FAULT_DELAY``.
+    ignore_windows : list of (int, int)
+        Each IGNORE frame applied at ``e``: the window ``(e + FAULT_DELAY, cycles)``.
     """
 
     def __init__(self, link: LinkParams) -> None:
@@ -664,6 +749,8 @@ class LinkModel:
         self.applied: list[Applied] = []
         self.rejections: list[Rejection] = []
         self.replies: list[tuple[int, dict[str, int]]] = []
+        self.fault_changes: list[FaultChange] = []
+        self.ignore_windows: list[tuple[int, int]] = []
         self._reply_cycle: int | None = None
 
     def feed(self, byte: int, cycle: int, framing_error: bool = False) -> None:
@@ -697,11 +784,17 @@ class LinkModel:
             room = player.room
         player.advance_to(cycle)
         seq = int.from_bytes(event.payload[0:2], "little") if ftype in SEQUENCED else None
-        segment = None
+        segment = setting = window = None
         bad = False
         if ftype == FrameType.SEGMENT:
             seq, segment = parse_segment(event.payload, link)
             bad = segment is None
+        elif ftype == FrameType.FAULT:
+            seq, setting = parse_fault(event.payload, link)
+            bad = setting is None
+        elif ftype == FrameType.IGNORE:
+            seq, window = parse_ignore(event.payload)
+            bad = window is None
         elif ftype == FrameType.TELEMETRY:
             bad = event.payload[0] >= link.n
         reason = None
@@ -723,7 +816,13 @@ class LinkModel:
         if ftype == FrameType.TELEMETRY:
             self._reply_cycle = cycle
             self.replies.append((cycle, self.link_fields(channel)))
-        self.applied.append(Applied(cycle, int(ftype), seq, segment, channel, event))
+        if setting is not None:
+            channel = setting.channel
+            self.fault_changes.append(FaultChange(cycle + FAULT_DELAY, setting.channel, setting.faults))
+        if window is not None:
+            self.ignore_windows.append((cycle + FAULT_DELAY, window))
+        self.applied.append(Applied(cycle, int(ftype), seq, segment, channel, event,
+                                    setting.faults if setting is not None else None, window))
         counters.accepted = (counters.accepted + 1) % _WRAP32
         if seq is not None:
             counters.next_seq = (counters.next_seq + 1) & _SEQ_MASK
@@ -743,6 +842,12 @@ class LinkModel:
         if channel is not None:
             fields["channel"] = channel
         return fields
+
+    def stimulus(self, cycles: int, strobe_edges: Sequence[int]) -> Stimulus:
+        """The emulator's stimulus for a run of ``cycles`` cycles: :func:`link_stimulus`
+        with this link's fault changes and ignore windows (run :meth:`finish` first)."""
+        return link_stimulus(self.player, cycles, tuple(strobe_edges), fault_changes=self.fault_changes,
+                             ignore_windows=self.ignore_windows)
 
     def segments_applied(self) -> list[Segment]:
         """The segments accepted into the FIFO, in order."""
@@ -797,11 +902,15 @@ def arrivals(wire: Sequence[WireByte], bit_cyc: int) -> list[tuple[int, int]]:
 
 # -- into the emulator's model ----------------------------------------------------------
 
-def link_stimulus(player: PlayerModel, cycles: int, strobe_edges: tuple[int, ...]) -> Stimulus:
-    """The player's effect as the emulator's stimulus: rate changes and arm changes.
+def link_stimulus(player: PlayerModel, cycles: int, strobe_edges: tuple[int, ...], *,
+                  fault_changes: Sequence[FaultChange] = (),
+                  ignore_windows: Sequence[tuple[int, int]] = ()) -> Stimulus:
+    """The link's effect as the emulator's stimulus: rate changes and arm changes from the
+    player, and the fault changes and ignore windows of the FAULT and IGNORE frames
+    applied (:attr:`LinkModel.fault_changes`, :attr:`LinkModel.ignore_windows`).
 
     The arm pin is taken as held high, so the emulator's ``arm`` input is the player's
-    arm output.
+    arm output. Settings from cycle ``cycles`` on are left out, as are rate changes.
     """
     changes = []
     live = list(player.link.hw.rates)
@@ -814,7 +923,9 @@ def link_stimulus(player: PlayerModel, cycles: int, strobe_edges: tuple[int, ...
                 live[ch] = rate
     arm = tuple((c, level) for c, level in player.arm_changes if c < cycles)
     return Stimulus(cycles=cycles, strobe_edges=tuple(strobe_edges), rate_changes=tuple(changes),
-                    arm_changes=arm or ((0, False),))
+                    arm_changes=arm or ((0, False),),
+                    fault_changes=tuple(c for c in fault_changes if c.cycle < cycles),
+                    ignore_windows=tuple(w for w in ignore_windows if w[0] < cycles))
 
 
 def asked(segments: Sequence[Segment], n: int) -> list[int]:
@@ -902,9 +1013,10 @@ def _respan(span: list[tuple[int, tuple[int, ...]]], link: LinkParams) -> list[t
 
 
 __all__ = [
-    "Applied", "Frame", "FrameDecoder", "LinkCounters", "LinkModel", "PlayerModel", "Rejection",
-    "Segment", "Telemetry", "WireByte", "arrivals", "asked", "board_lengths", "check_segment", "crc16",
-    "encode_command", "encode_frame", "encode_segment", "encode_telemetry_request", "fit_segments",
-    "host_lengths", "link_stimulus", "pack_telemetry", "parse_segment", "parse_telemetry",
-    "rx_cycle", "schedule", "segment_payload", "stuff",
+    "Applied", "ChannelFaults", "Frame", "FrameDecoder", "LinkCounters", "LinkModel", "PlayerModel", "Rejection",
+    "Segment", "Telemetry", "WireByte", "arrivals", "asked", "board_lengths", "check_ignore", "check_segment",
+    "crc16", "encode_command", "encode_fault", "encode_frame", "encode_ignore", "encode_segment",
+    "encode_telemetry_request", "fault_payload", "fit_segments", "host_lengths", "link_stimulus",
+    "pack_telemetry", "parse_fault", "parse_ignore", "parse_segment", "parse_telemetry", "rx_cycle",
+    "schedule", "segment_payload", "stuff",
 ]

@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 
 from dvgate.config import parse_config
 from dvgate.errors import UserError
+from dvgate.gateware.faults import pack_faults
 from dvgate.gateware.frame_rx import FrameDecoder as FrameDecoderHw
 from dvgate.gateware.frame_tx import FrameEncoder
 from dvgate.gateware.linked_top import write_linked_verilog
@@ -335,6 +336,9 @@ def assert_link_equal(link: LinkParams, feed, cycles):
             live = list(rates)
     assert list(run.rates[1:]) == commits
     assert list(run.arm[1:]) == [(c, int(v)) for c, v in model.player.arm_changes if c < cycles]
+    # The fault and ignore ports: every write, its cycle and its value.
+    assert list(run.faults) == [(c.cycle, c.channel, pack_faults(c.faults)) for c in model.fault_changes]
+    assert list(run.ignores) == model.ignore_windows
     status = run.status
     assert status["next_seq"] == model.counters.next_seq
     assert status["rejected"] == model.counters.rejected
@@ -475,7 +479,8 @@ def test_linked_verilog_names_the_pins():
 
 
 def test_board_accepts_only_host_frame_types():
-    assert set(board_lengths(LINK)) == {1, 2, 3, 4, 5}
-    assert FrameType.FAULT not in board_lengths(LINK)  # reserved: rejected as a format error
-    model = model_of(LINK, fed([encode_frame(FrameType.FAULT, b"\x00")]), 200)
-    assert [r.reason for r in model.rejections] == [Reason.FORMAT]
+    assert set(board_lengths(LINK)) == {1, 2, 3, 4, 5, 6, 7}
+    assert FrameType.TELEMETRY_REPLY not in board_lengths(LINK)
+    # An unknown type, and a FAULT frame of the wrong length: format errors.
+    model = model_of(LINK, fed([encode_frame(0x08, b"\x00"), encode_frame(FrameType.FAULT, b"\x00")]), 200)
+    assert [r.reason for r in model.rejections] == [Reason.FORMAT] * 2

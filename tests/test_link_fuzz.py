@@ -5,8 +5,8 @@ Fuzz traffic (``dvgate.sim.link_fuzz``): flipped bits, truncated, paused, repeat
 lost frames, stray bytes, and frames back to back at the highest rate. The gateware is
 held equal to the pure-Python model on every run here (so the model's big runs in
 ``benchmarks/link_fuzz.py`` speak for the gateware), and the properties are checked:
-no corrupted frame applied, every commanded segment and command applied exactly once
-and in order, every frame that arrived and was not applied counted.
+no corrupted frame applied, every commanded segment, command and fault setting applied
+exactly once and in order, every frame that arrived and was not applied counted.
 """
 
 import random
@@ -16,6 +16,7 @@ from conftest import small_params
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
+from dvgate.gateware.faults import pack_faults
 from dvgate.linkspec import BITS_PER_BYTE, FrameType, LinkParams, Reason
 from dvgate.sim.link_bench import run_link_bytes, run_linked
 from dvgate.sim.link_fuzz import MUTATIONS, FuzzSettings, check, generate
@@ -42,6 +43,8 @@ def live_changes(model: LinkModel, cycles: int) -> list[tuple[int, tuple[int, ..
 def assert_gateware_equals_model(run, model: LinkModel, cycles: int) -> None:
     assert list(run.rates[1:]) == live_changes(model, cycles)
     assert list(run.arm[1:]) == [(c, int(v)) for c, v in model.player.arm_changes if c < cycles]
+    assert list(run.faults) == [(c.cycle, c.channel, pack_faults(c.faults)) for c in model.fault_changes]
+    assert list(run.ignores) == model.ignore_windows
     status = run.status
     assert status["rejected"] == model.counters.rejected
     assert (status["next_seq"], status["accepted"]) == (model.counters.next_seq, model.counters.accepted)
@@ -58,7 +61,7 @@ def assert_gateware_equals_model(run, model: LinkModel, cycles: int) -> None:
 def test_fuzzed_gateware_equals_model_and_keeps_every_property(seed, policy, weights, burst):
     link = make_link(underrun=policy)
     weights = {**weights, "clean": weights["clean"] + 1.0}  # progress needs some clean frames
-    result = generate(link, FuzzSettings(segments=20, weights=weights, burst=burst), seed)
+    result = generate(link, FuzzSettings(segments=20, weights=weights, burst=burst, faults=0.15), seed)
     model = result.model
     outcome = check(result)
     assert outcome.ok, outcome
@@ -110,8 +113,11 @@ def test_full_rate_frames_through_the_uart():
     link = make_link(timeout_cyc=4 * BITS_PER_BYTE * 4)
     byte_cyc = link.byte_cyc
     offset = rx_cycle(0, link.bit_cyc)
+    # No "line" damage: a byte with a bad stop bit cannot be put on this wire.
+    weights = {**FuzzSettings().weights, "line": 0.0}
     result = generate(link, FuzzSettings(segments=12, spacing=byte_cyc, burst=6, telemetry=0.0,
-                                         max_duration=400), seed=11, first=offset + 5)
+                                         max_duration=400, weights=weights, faults=0.1), seed=11, first=offset + 5)
+    assert result.mutations["line"] == 0 and any(kind == FrameType.FAULT for kind, _ in result.commanded)
     assert check(result).ok
     wire = [WireByte(value, cycle - offset) for cycle, value, _ in result.arrivals]
     assert all(b.start - a.start >= byte_cyc for a, b in zip(wire, wire[1:], strict=False))
@@ -124,16 +130,18 @@ def test_full_rate_frames_through_the_uart():
 def test_model_fuzz_many_frames(policy):
     """The pure-Python link on many more frames than the gateware runs above."""
     link = make_link(underrun=policy)
-    sent = 0
+    sent = settings_applied = 0
     counted = {r: 0 for r in Reason}
     for seed in range(4):
         result = generate(link, FuzzSettings(segments=600), seed=1000 + seed)
         outcome = check(result)
         assert outcome.ok, outcome
         sent += result.frames_sent
+        settings_applied += len(result.model.fault_changes) + len(result.model.ignore_windows)
         for reason, count in result.model.counters.rejected.items():
             counted[reason] += count
     assert sent > 8000
+    assert settings_applied > 40  # fault settings were in the traffic, each applied once (check above)
     # The line was hostile: every kind of damage the decoder can see was seen.
     for reason in (Reason.CRC, Reason.TRUNCATED, Reason.FORMAT, Reason.NOISE, Reason.LINE, Reason.SEQUENCE):
         assert counted[reason] > 0, reason
