@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from dvgate.cli import SAFETY
 from dvgate.commands._common import console, table
 from dvgate.config import load_config
 from dvgate.linkspec import link_params, link_settings
@@ -22,6 +23,7 @@ def run(args: argparse.Namespace) -> int:
     segments, refits = load_stream_program(args.program, config)
     port = open_port(args.port, link_settings(config).baud)
     out = console()
+    out.print(f"safety: the stream arms the board's outputs. {SAFETY}")
     names = [c.name for c in config.channels]
     try:
         with progress_bar(out, config.clock_hz) as progress:
