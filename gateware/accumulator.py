@@ -5,7 +5,7 @@ Cycle rules: ``docs/timing.md``, section "Rate accumulator".
 
 from __future__ import annotations
 
-from amaranth.hdl import Module, Mux, Shape, Signal, signed, unsigned
+from amaranth.hdl import Cat, Module, Mux, Shape, Signal, signed, unsigned
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
@@ -100,9 +100,17 @@ class RateAccumulator(wiring.Component):
 
         clamp = Signal()
         n_acc = Signal.like(self.n)
-        total = Signal(signed(max(p.owed_width, p.rate_bits) + 2))
-        over  = Signal()
-        under = Signal()
+        # The owed update splits at the binary point: the hand-over only changes the whole
+        # part, so the fraction is a plain add whose carry joins a short whole-part sum.
+        # That keeps the long carry chain free of the hand-over logic and lets the
+        # saturation test look at the whole part alone.
+        rate_ext  = Signal(signed(max(p.rate_bits, frac + 1)))
+        lo        = Signal(frac + 1)
+        hi        = Signal(signed(max(p.owed_bits, p.rate_bits - frac, n_acc.shape().width) + 2))
+        over      = Signal()
+        under     = Signal()
+        hi_max    = (1 << (p.owed_bits - 1)) - 1
+        hi_min    = -(1 << (p.owed_bits - 1))
 
         if p.scheme == "burst":
             whole = Signal(signed(p.owed_bits + 1))
@@ -132,10 +140,13 @@ class RateAccumulator(wiring.Component):
             self.clamp_evt.eq(self.load & clamp),
             self.defer_evt.eq(self.take & ~self.accept),
             n_acc.eq(Mux(self.load, self.n, 0)),
-            # Two spare bits: the sum of three terms cannot overflow before the compare.
-            total.eq(owed + self.rate - (n_acc << frac)),
-            over.eq(total > p.owed_max),
-            under.eq(total < p.owed_min),
+            rate_ext.eq(self.rate),
+            lo.eq(owed[:frac] + rate_ext[:frac]),
+            # Two spare bits: the sum of the whole parts cannot overflow before the compare.
+            hi.eq(owed[frac:].as_signed() + rate_ext[frac:].as_signed() + lo[frac] - n_acc),
+            # The fraction never takes the sum out of range: the whole part decides.
+            over.eq(hi > hi_max),
+            under.eq(hi < hi_min),
             self.sat_evt.eq(self.armed & (over | under)),
         ]
 
@@ -146,5 +157,5 @@ class RateAccumulator(wiring.Component):
         with m.Elif(under):
             m.d.sync += owed.eq(p.owed_min)
         with m.Else():
-            m.d.sync += owed.eq(total)
+            m.d.sync += owed.eq(Cat(lo[:frac], hi[:p.owed_bits]))
         return m
