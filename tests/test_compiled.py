@@ -147,7 +147,7 @@ def test_example_config_one_second_against_the_model():
 @pytest.mark.parametrize("name", ["burst", "binary", "ternary"])
 def test_random_stimuli(name):
     params = PARAMS[name]
-    rng = random.Random(hash(name) & 0xFFFF)
+    rng = random.Random(f"random stimuli {name}")  # a fixed seed per scheme: the same runs every time
     for case in range(25):
         stim = random_stimulus(params, rng, rng.randint(200, 4000))
         # Every other case: the harness simulates each span it would skip and compares registers.
