@@ -12,7 +12,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from dvgate.config import Config
-from dvgate.params import HardwareParams
 from dvgate.sim.books import conservation_errors
 from dvgate.sim.model import armed_intervals, run_model
 from dvgate.sim.stimulus import integral, stimulus_for
@@ -105,18 +104,16 @@ def summarise(config: Config, stim: Stimulus, result: RunResult) -> tuple[Channe
     return tuple(out)
 
 
-def python_engine(params: HardwareParams, stim: Stimulus, *, vcd_path: str | Path | None = None) -> RunResult:
-    """The Amaranth simulation (imported late: Amaranth is only needed here)."""
-    from dvgate.sim.testbench import run_amaranth
-
-    return run_amaranth(params, stim, vcd_path=vcd_path)
-
-
-def simulate_config(config: Config, seconds: float, *, engine: Engine | None = None, engine_name: str = "python",
+def simulate_config(config: Config, seconds: float, *, engine: Engine | None = None, engine_name: str = "",
                     vcd_path: str | Path | None = None) -> SimReport:
-    """Run ``engine`` and the model for ``seconds`` of the config's periodic strobe."""
+    """Run ``engine`` (default: :func:`dvgate.sim.engines.get_engine`'s choice) and the model
+    for ``seconds`` of the config's periodic strobe."""
     stim = stimulus_for(config, seconds)
-    run = engine or python_engine
+    if engine is None:
+        from dvgate.sim.engines import get_engine
+
+        engine, engine_name = get_engine(None)
+    run = engine
     kwargs = {"vcd_path": vcd_path} if vcd_path is not None else {}
     got = run(config.hw, stim, **kwargs)
     want = run_model(config.hw, stim)

@@ -19,7 +19,7 @@ def example_config_text() -> str:
 def run(args: argparse.Namespace) -> int:
     path = write_atomically(args.path, example_config_text(), force=args.force)
     print(f"wrote {path}: three accelerometer channels, burst scheme, 12 MHz clock (invented example)")
-    print(f"next: dvgate check {path}  then  dvgate sim {path} --seconds 0.005")
+    print(f"next: dvgate check {path}  then  dvgate sim {path} --seconds 2")
     print(f"safety: {SAFETY}")
     return 0
 

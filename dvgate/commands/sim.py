@@ -43,5 +43,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--seconds", type=float, default=0.005, help="simulated time (default 0.005)")
     parser.add_argument("--engine", choices=["python", "compiled"], default=None,
                         help="simulation engine (default: compiled where a C++ compiler is found)")
-    parser.add_argument("--vcd", metavar="FILE", help="write a VCD of the run (python engine)")
+    parser.add_argument("--vcd", metavar="FILE",
+                        help="write a VCD of the run (the compiled engine then evaluates every cycle)")
     parser.set_defaults(func=run)
