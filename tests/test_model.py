@@ -115,3 +115,15 @@ def test_rate_change_mid_burst_and_status():
     assert result.status.period == 30
     assert result.status.host_absent  # last strobe at 43: 56 cycles without one at cycle 100
     assert Edge(0, NEG, 14, 16) not in result.edges  # interleaved starts positive
+
+
+def test_three_rest_pulses_on_each_line_at_zero_input():
+    # Three rest pulses on each line at zero input: common practice, no source (the example config).
+    from dvgate.config import load_config
+    from dvgate.sim.stimulus import stimulus_for
+
+    config = load_config("dvgate/examples/bench.toml", weight="0.01 m/s")
+    hw = config.hw
+    params = type(hw)(**{**hw.__dict__, "init_rates": (0,) * hw.n})
+    run = simulate(params, stimulus_for(config, 0.0105))  # ten strobes
+    assert run.counts == [(30, 30)] * hw.n
