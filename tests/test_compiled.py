@@ -32,7 +32,8 @@ from dvgate.sim.testbench import run_amaranth
 from dvgate.sim.trace import RateChange, Stimulus
 from dvgate.simulate import compare_results
 
-EXAMPLE = Path(compiled.__file__).resolve().parents[1] / "dvgate" / "examples" / "bench.toml"
+# The repository's copy (the tests run from the top folder, as the README says).
+EXAMPLE = Path(__file__).resolve().parents[1] / "dvgate" / "examples" / "bench.toml"
 
 
 @pytest.fixture(scope="module", autouse=True)

@@ -102,14 +102,16 @@ def test_cli_streams_to_a_simboard_process(config_path, tmp_path):
     program = Program(np.array([s.duration for s in segments]), np.array([s.rates for s in segments]),
                       ("x", "y"), config.hw.frac_bits, config.clock_hz, (0.01, 0.01), 3000)
     program_path = save_program(program, tmp_path / "program.npz")
+    # cwd outside the repository: there, `-m` would find the top folder's dvgate/ without
+    # its mapped subpackages instead of the installed package.
     board = subprocess.Popen([sys.executable, "-m", "dvgate.cli", "simboard", str(config_path)],
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=tmp_path)
     try:
         port = board.stdout.readline().strip()
         assert port.startswith("/dev/"), board.stderr.read()
         result = subprocess.run([sys.executable, "-m", "dvgate.cli", "stream", str(program_path), "--port", port,
                                  "--config", str(config_path), "--reply-timeout", "60"],
-                                capture_output=True, text=True, timeout=300)
+                                capture_output=True, text=True, timeout=300, cwd=tmp_path)
     finally:
         board.terminate()
         board.wait(timeout=30)
