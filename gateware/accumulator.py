@@ -81,6 +81,7 @@ class RateAccumulator(wiring.Component):
             "armed": In(1),
             "accept": In(1),
             "no_rest": In(1),
+            "prepare": In(1),
             "n": Out(net_shape(params)),
             "new_pos": Out(count_shape(params)),
             "new_neg": Out(count_shape(params)),
@@ -98,56 +99,76 @@ class RateAccumulator(wiring.Component):
         owed = self.owed
         one = 1 << frac
 
-        clamp = Signal()
         n_acc = Signal.like(self.n)
         # The owed update splits at the binary point: the hand-over only changes the whole
-        # part, so the fraction is a plain add whose carry joins a short whole-part sum.
-        # That keeps the long carry chain free of the hand-over logic and lets the
-        # saturation test look at the whole part alone.
+        # part, so the fraction is a plain add whose carry joins a short whole-part sum,
+        # and the saturation test looks at the whole part alone.
         rate_ext  = Signal(signed(max(p.rate_bits, frac + 1)))
         lo        = Signal(frac + 1)
-        hi        = Signal(signed(max(p.owed_bits, p.rate_bits - frac, n_acc.shape().width) + 2))
+        hi_w      = max(p.owed_bits, p.rate_bits - frac, n_acc.shape().width) + 2
+        hi0       = Signal(signed(hi_w))
+        hi_t      = Signal(signed(hi_w))
+        hi        = Signal(signed(hi_w))
         over      = Signal()
         under     = Signal()
         hi_max    = (1 << (p.owed_bits - 1)) - 1
         hi_min    = -(1 << (p.owed_bits - 1))
-
-        if p.scheme == "burst":
-            whole = Signal(signed(p.owed_bits + 1))
-            # owed >> frac floors; a negative value with a fraction rounds up to truncate.
-            m.d.comb += whole.eq((owed >> frac) + (owed[-1] & (owed[:frac] != 0)))
-            m.d.comb += [
-                clamp.eq((whole > p.clamp) | (whole < -p.clamp)),
-                self.n.eq(Mux(whole > p.clamp, p.clamp, Mux(whole < -p.clamp, -p.clamp, whole))),
-                self.new_pos.eq(Mux(self.no_rest, 0, p.rest) + Mux(self.n > 0, self.n, 0)),
-                self.new_neg.eq(Mux(self.no_rest, 0, p.rest) + Mux(self.n < 0, -self.n, 0)),
-            ]
-        elif p.scheme == "binary":
-            m.d.comb += [
-                self.new_pos.eq(owed >= 0),
-                self.new_neg.eq(owed < 0),
-                self.n.eq(Mux(owed >= 0, 1, -1)),
-            ]
-        else:  # ternary
-            m.d.comb += [
-                self.new_pos.eq(owed >= one),
-                self.new_neg.eq(owed <= -one),
-                self.n.eq(self.new_pos - self.new_neg),
-            ]
+        # The hand-over is decided one cycle ahead, from the owed amount the next cycle
+        # will hold, and kept in registers: the strobe's cycle then only checks the
+        # backlog. ``prepare`` (the detector's ``stb_next``) is high the cycle before every
+        # strobe, and never on a strobe's own cycle, so that next owed amount is the one
+        # with nothing handed over this cycle (``hi0``).
+        owed_nx0  = Signal.like(owed)
+        hand_n    = Signal.like(self.n)
+        hand_clmp = Signal()
 
         m.d.comb += [
-            self.load.eq(self.take & self.accept),
-            self.clamp_evt.eq(self.load & clamp),
-            self.defer_evt.eq(self.take & ~self.accept),
-            n_acc.eq(Mux(self.load, self.n, 0)),
             rate_ext.eq(self.rate),
             lo.eq(owed[:frac] + rate_ext[:frac]),
             # Two spare bits: the sum of the whole parts cannot overflow before the compare.
-            hi.eq(owed[frac:].as_signed() + rate_ext[frac:].as_signed() + lo[frac] - n_acc),
-            # The fraction never takes the sum out of range: the whole part decides.
+            hi0.eq(owed[frac:].as_signed() + rate_ext[frac:].as_signed() + lo[frac]),
+            # Both outcomes of the backlog check are ready before it decides between them.
+            hi_t.eq(hi0 - hand_n),
+            hi.eq(Mux(self.load, hi_t, hi0)),
             over.eq(hi > hi_max),
             under.eq(hi < hi_min),
             self.sat_evt.eq(self.armed & (over | under)),
+        ]
+        with m.If(~self.armed):
+            m.d.comb += owed_nx0.eq(0)
+        with m.Elif(hi0 > hi_max):
+            m.d.comb += owed_nx0.eq(p.owed_max)
+        with m.Elif(hi0 < hi_min):
+            m.d.comb += owed_nx0.eq(p.owed_min)
+        with m.Else():
+            m.d.comb += owed_nx0.eq(Cat(lo[:frac], hi0[:p.owed_bits]))
+
+        ask_n    = Signal.like(self.n)
+        ask_clmp = Signal()
+        if p.scheme == "burst":
+            whole = Signal(signed(p.owed_bits + 1))
+            # >> frac floors; a negative value with a fraction rounds up to truncate.
+            m.d.comb += [
+                whole.eq((owed_nx0 >> frac) + (owed_nx0[-1] & (owed_nx0[:frac] != 0))),
+                ask_clmp.eq((whole > p.clamp) | (whole < -p.clamp)),
+                ask_n.eq(Mux(whole > p.clamp, p.clamp, Mux(whole < -p.clamp, -p.clamp, whole))),
+            ]
+        elif p.scheme == "binary":
+            m.d.comb += ask_n.eq(Mux(owed_nx0 >= 0, 1, -1))
+        else:  # ternary
+            m.d.comb += ask_n.eq(Mux(owed_nx0 >= one, 1, Mux(owed_nx0 <= -one, -1, 0)))
+        with m.If(self.prepare):
+            m.d.sync += [hand_n.eq(ask_n), hand_clmp.eq(ask_clmp)]
+
+        rest = Mux(self.no_rest, 0, p.rest) if p.scheme == "burst" else 0
+        m.d.comb += [
+            self.n.eq(hand_n),
+            self.new_pos.eq(rest + Mux(hand_n > 0, hand_n, 0)),
+            self.new_neg.eq(rest + Mux(hand_n < 0, -hand_n, 0)),
+            self.load.eq(self.take & self.accept),
+            self.clamp_evt.eq(self.load & hand_clmp),
+            self.defer_evt.eq(self.take & ~self.accept),
+            n_acc.eq(Mux(self.load, hand_n, 0)),
         ]
 
         with m.If(~self.armed):

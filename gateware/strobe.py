@@ -35,6 +35,9 @@ class StrobeDetector(wiring.Component):
         Physical level of the strobe pin (asynchronous to the clock).
     stb : Signal(1), out
         One cycle high on each strobe (combinational from registers).
+    stb_next : Signal(1), out
+        ``stb`` of the next cycle, known one cycle ahead (lets the channels prepare
+        their hand-over).
     strobes : Signal(32), out
         Strobes seen since reset; wraps.
     period : Signal(32), out
@@ -45,6 +48,7 @@ class StrobeDetector(wiring.Component):
 
     pin: In(1)
     stb: Out(1)
+    stb_next: Out(1)
     strobes: Out(STROBE_COUNT_BITS)
     period: Out(STROBE_COUNT_BITS)
     host_absent: Out(1)
@@ -81,6 +85,10 @@ class StrobeDetector(wiring.Component):
         with m.Elif(run != width):
             m.d.sync += run.eq(run + 1)
         m.d.comb += self.stb.eq(active & (run == width - 1))
+        # What stb will be next cycle: s1 becomes s2, run advances. Two strobes are never
+        # on consecutive cycles (run passes M - 1 once per active stretch).
+        m.d.comb += self.stb_next.eq((s1 ^ idle) & Mux(active, Mux(run != width, run + 1, run) == width - 1,
+                                                      width == 1))
 
         # One saturating incrementer serves both the timer and the period.
         m.d.comb += since_inc.eq(Mux(since == _COUNT_MAX, since, since + 1))

@@ -198,6 +198,7 @@ class Emulator(wiring.Component):
             m.d.comb += [
                 acc.rate.eq(regs.rates[i]),
                 acc.take.eq(take),
+                acc.prepare.eq(det.stb_next),
                 acc.armed.eq(armed),
                 acc.accept.eq(em.accept),
                 acc.no_rest.eq(fs.faults.no_rest),

@@ -224,7 +224,9 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
     optional = {"ignore_left"}
     for i, name in enumerate(params.names):
         needed |= {f"{name}_acc.owed", f"{name}_emit.pend_pos", f"{name}_emit.pend_neg", f"{name}_emit.mode"}
-        holding |= {f"rate_regs.shadow{i}"}
+        # The hand-over decided the cycle before a strobe: loaded only when the detector
+        # expects a strobe next cycle, so it holds through every quiet span.
+        holding |= {f"rate_regs.shadow{i}", f"{name}_acc.hand_n", f"{name}_acc.hand_clmp"}
         # The emitter's own line registers drive nothing once a fault stage follows it.
         optional |= {f"{name}_emit.timer", f"{name}_emit.last", f"{name}_emit.pos", f"{name}_emit.neg",
                      f"{name}_fault.faults", f"{name}_fault.phase", f"{name}_fault.pos", f"{name}_fault.neg"}

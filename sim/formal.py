@@ -109,14 +109,14 @@ def _caller() -> tuple[str, int]:
 
 
 class AccumulatorProof(_Wrapper):
-    """The rate accumulator with free rate, take, armed, accept and no_rest."""
+    """The rate accumulator with free rate, take, armed, accept, no_rest and prepare (as the detector drives it)."""
 
     def __init__(self, params: HardwareParams) -> None:
         super().__init__()
         self._params = params
         self.acc = RateAccumulator(params)
         a = self.acc
-        self.free(a.rate, a.take, a.armed, a.accept, a.no_rest)
+        self.free(a.rate, a.take, a.armed, a.accept, a.no_rest, a.prepare)
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -130,6 +130,12 @@ class AccumulatorProof(_Wrapper):
         sat_seen = Signal()
         books    = Signal(signed(wide))
         n_taken  = Mux(a.load, a.n, 0)
+        prepared = Signal()
+
+        # As the strobe detector drives it: ``prepare`` the cycle before every take, never
+        # on a take's own cycle (two strobes are never on consecutive cycles).
+        m.d.sync += prepared.eq(a.prepare)
+        m.d.comb += [Assume(~a.take | prepared), Assume(~(a.take & a.prepare))]
 
         # Shadows of "since the last arming": cleared with the books while disarmed.
         with m.If(a.armed):
@@ -151,11 +157,11 @@ class AccumulatorProof(_Wrapper):
             self.prop(m, "count in range", (a.n <= p.clamp) & (a.n >= -p.clamp) & (a.n == a.new_pos - a.new_neg))
         elif p.scheme == "binary":
             # One pulse toward zero: +1 while nothing is owed the other way.
-            self.prop(m, "one quantum", a.n == Mux(a.owed >= 0, 1, -1))
+            self.prop(m, "one quantum", ~a.take | (a.n == Mux(a.owed >= 0, 1, -1)))
             self.prop(m, "count in range", a.n == a.new_pos - a.new_neg)
         else:
             # One pulse toward zero once a whole one is owed, else none.
-            self.prop(m, "one quantum", a.n == Mux(a.owed >= one, 1, Mux(a.owed <= -one, -1, 0)))
+            self.prop(m, "one quantum", ~a.take | (a.n == Mux(a.owed >= one, 1, Mux(a.owed <= -one, -1, 0))))
             self.prop(m, "count in range", a.n == a.new_pos - a.new_neg)
         self.prop(m, "hand-over size", a.new_pos + a.new_neg <= p.per_strobe_max)
         return m

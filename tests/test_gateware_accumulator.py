@@ -23,10 +23,13 @@ def run(p: HardwareParams, inputs: list[dict[str, int]]) -> list[dict[str, int]]
 
 
 def hand_over(p: HardwareParams, owed: int, *, accept: int = 1) -> tuple[dict, int]:
-    """Load ``owed`` with one cycle of rate, take a strobe next cycle; (row, owed after)."""
+    """Load ``owed`` with one cycle of rate, take a strobe next cycle; (row, owed after).
+
+    ``prepare`` comes the cycle before the take, as the strobe detector's ``stb_next`` does.
+    """
     rows = run(p, [
-        {"armed": 1, "rate": owed},
-        {"rate": 0, "take": 1, "accept": accept},
+        {"armed": 1, "rate": owed, "prepare": 1},
+        {"rate": 0, "take": 1, "accept": accept, "prepare": 0},
         {"take": 0},
     ])
     assert rows[1]["owed"] == owed
@@ -101,11 +104,24 @@ def test_saturation_with_rate_wider_than_owed() -> None:
 
 def test_binary_alternates_at_zero_rate() -> None:
     p = params(scheme="binary", rest=0)
-    rows = run(p, [{"armed": 1, "rate": 0, "take": 1, "accept": 1}] + [{}] * 5)
+    # a strobe every other cycle (the closest two can come), prepared the cycle before
+    prepare = {"prepare": 1, "take": 0}
+    take = {"prepare": 0, "take": 1}
+    rows = run(p, [{"armed": 1, "rate": 0, "accept": 1, **prepare}] + [take, prepare] * 3)
+    takes = rows[1::2]
     # owed 0 -> n = +1 -> owed -1 pulse -> n = -1 -> owed 0 -> ...
-    assert [r["n"] for r in rows] == [1, -1, 1, -1, 1, -1]
-    assert [(r["new_pos"], r["new_neg"]) for r in rows[:2]] == [(1, 0), (0, 1)]
-    assert [r["owed"] for r in rows] == [0, -ONE, 0, -ONE, 0, -ONE]
+    assert [r["n"] for r in takes] == [1, -1, 1]
+    assert [(r["new_pos"], r["new_neg"]) for r in takes[:2]] == [(1, 0), (0, 1)]
+    assert [r["owed"] for r in rows] == [0, 0, -ONE, -ONE, 0, 0, -ONE]
+
+
+def test_hand_over_is_decided_the_cycle_before() -> None:
+    # prepare samples the owed amount of the next cycle; a rate change on the take's own
+    # cycle does not change the hand-over (it counts toward the next one).
+    p = params()
+    rows = run(p, [{"armed": 1, "rate": 3 * ONE, "prepare": 1}, {"rate": 5 * ONE, "take": 1, "accept": 1,
+                                                                "prepare": 0}, {"take": 0}])
+    assert rows[1]["n"] == 3 and rows[2]["owed"] == 5 * ONE
 
 
 @pytest.mark.parametrize(("owed", "n"), [
