@@ -6,14 +6,13 @@ for LEDs. Rules: ``docs/link.md`` (the link) and ``docs/timing.md`` (the emulato
 
 from pathlib import Path
 
-from amaranth.back import verilog
 from amaranth.hdl import Cat, Module, Signal
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.link import HostLink
 from dvgate.gateware.segments import SegmentPlayer
-from dvgate.gateware.top import Emulator
+from dvgate.gateware.top import Emulator, component_verilog
 from dvgate.gateware.uart_rx import UartRx
 from dvgate.gateware.uart_tx import UartTx
 from dvgate.linkspec import FLAG_BITS, LinkParams
@@ -186,7 +185,4 @@ def write_linked_verilog(link: LinkParams, path: str | Path | None = None) -> st
     str
         The Verilog source.
     """
-    text = verilog.convert(LinkedTop(link), name="dvgate_linked")
-    if path is not None:
-        Path(path).write_text(text)
-    return text
+    return component_verilog(LinkedTop(link), "dvgate_linked", path)

@@ -252,7 +252,12 @@ def write_verilog(params: HardwareParams, path: str | Path | None = None) -> str
     str
         The Verilog source.
     """
-    text = verilog.convert(Emulator(params), name="dvgate_top")
+    return component_verilog(Emulator(params), "dvgate_top", path)
+
+
+def component_verilog(component: wiring.Component, name: str, path: str | Path | None = None) -> str:
+    """Verilog of ``component`` as module ``name`` (ports from its signature), also written to ``path``."""
+    text = verilog.convert(component, name=name)
     if path is not None:
         Path(path).write_text(text)
     return text
