@@ -21,7 +21,7 @@ from dvgate.gateware.linked_top import LinkedTop
 from dvgate.linkspec import BITS_PER_BYTE, LinkParams, Reason
 from dvgate.params import HardwareParams
 from dvgate.sim.link_model import WireByte
-from dvgate.sim.testbench import _edges
+from dvgate.sim.testbench import edges_from_levels
 from dvgate.sim.trace import Edge
 
 
@@ -264,7 +264,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
         raise RuntimeError(f"simulation ended at cycle {status.get('cycle')}, not {cycles}")
     return LinkedRun(
         cycles=cycles,
-        edges=_edges(out_changes, 2 * hw.n, hw.active_low),
+        edges=edges_from_levels(out_changes, 2 * hw.n, hw.active_low),
         rates=tuple(rate_changes),
         arm=tuple(arm_changes),
         tx=tuple(decode_line(tx_changes, link.bit_cyc)),

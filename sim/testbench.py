@@ -24,7 +24,7 @@ from dvgate.gateware.top import Emulator
 from dvgate.params import IGNORE_CYCLES_BITS, HardwareParams
 from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
 
-__all__ = ["run_amaranth", "input_plan", "run_cycles"]
+__all__ = ["edges_from_levels", "input_plan", "run_amaranth", "run_cycles"]
 
 
 def _clock_fs(params: HardwareParams) -> int:
@@ -155,7 +155,7 @@ def _plan_ignores(stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
         plan[cycle].setdefault("ignore_we", 0)
 
 
-def _edges(changes: list[tuple[int, tuple[int, ...]]], n_lines: int,
+def edges_from_levels(changes: list[tuple[int, tuple[int, ...]]], n_lines: int,
            active_low: bool) -> tuple[Edge, ...]:
     """Pulses from the output changes ``(cycle, physical levels)`` seen after each edge."""
     idle = int(active_low)
@@ -271,7 +271,7 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
         raise RuntimeError(f"simulation ended at cycle {results.get('cycle')}, not {n_cyc}")
     return RunResult(
         cycles=n_cyc,
-        edges=_edges(changes, 2 * params.n, params.active_low),
+        edges=edges_from_levels(changes, 2 * params.n, params.active_low),
         status=results["status"],
         channels=results["channels"],
     )
