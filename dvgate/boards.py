@@ -40,7 +40,7 @@ from amaranth.lib import io
 from amaranth.lib.cdc import FFSynchronizer, ResetSynchronizer
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
-from dvgate.config import Config, _format_errors, read_toml, section
+from dvgate.config import Config, format_errors, read_toml, section
 from dvgate.errors import UserError
 from dvgate.params import HardwareParams
 from dvgate.pll import PllPlan, exact_hz, plan_pll
@@ -323,7 +323,7 @@ def _read_model(path: Path) -> PinMapModel:
     try:
         return PinMapModel.model_validate(raw)
     except ValidationError as error:
-        raise UserError(_format_errors(error, str(path), model=PinMapModel)) from None
+        raise UserError(format_errors(error, str(path), model=PinMapModel)) from None
 
 
 def _import_platform(text: str, source: str) -> type:

@@ -373,15 +373,15 @@ def section(config: Config, name: str, model: type[M]) -> M:
     try:
         return model.model_validate(raw)
     except ValidationError as error:
-        raise UserError(_format_errors(error, config.source, model=model, prefix=name)) from None
+        raise UserError(format_errors(error, config.source, model=model, prefix=name)) from None
 
 
 def _fail(field: str, value: str, allowed: str) -> None:
     raise UserError(f"{field} = {value!r}: allowed: {allowed}")
 
 
-def _format_errors(error: ValidationError, source: str, *,
-                   model: type[BaseModel] = ..., prefix: str = "") -> str:  # type: ignore[assignment]
+def format_errors(error: ValidationError, source: str, *,
+                   model: type[BaseModel] | None = None, prefix: str = "") -> str:
     """One line per problem: field, value, what is allowed (or what was meant)."""
     lines = []
     items = error.errors()
@@ -393,7 +393,7 @@ def _format_errors(error: ValidationError, source: str, *,
         field = _field_name(((prefix,) if prefix else ()) + tuple(loc)) or "channels"
         value = item.get("input")
         if item["type"] == "extra_forbidden":
-            known = _known_keys(item["loc"][:-1], ConfigModel if model is ... else model)
+            known = _known_keys(item["loc"][:-1], model or ConfigModel)
             guess = difflib.get_close_matches(str(item["loc"][-1]), known, n=1)
             hint = f"; did you mean {guess[0]!r}?" if guess else f"; known keys here: {', '.join(known)}"
             prefix = field.rsplit(".", 1)[0] + "." if "." in field else ""
@@ -445,7 +445,7 @@ def parse_config(raw: dict[str, Any], source: str = "<config>") -> Config:
     try:
         model = ConfigModel.model_validate(raw)
     except ValidationError as error:
-        raise UserError(_format_errors(error, source)) from None
+        raise UserError(format_errors(error, source)) from None
     try:
         return Config(model, source)
     except UserError as error:
@@ -500,6 +500,6 @@ def load_config(path: str | Path, *, channels: int | None = None, weight: str | 
 
 
 __all__ = [
-    "STANDARD_GRAVITY", "Channel", "Config", "ConfigModel", "Quantity", "apply_overrides",
+    "STANDARD_GRAVITY", "Channel", "Config", "ConfigModel", "Quantity", "apply_overrides", "format_errors",
     "load_config", "parse_config", "read_toml",
 ]

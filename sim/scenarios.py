@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from dvgate.config import Channel, _format_errors, read_toml
+from dvgate.config import Channel, format_errors, read_toml
 from dvgate.errors import UserError
 from dvgate.sim import quantities as q
 from dvgate.sim.gravity import earth_rate_components, normal_gravity
@@ -567,7 +567,7 @@ def parse_scenario(raw: dict[str, Any], source: str = "<scenario>") -> ScenarioF
     try:
         return ScenarioFile.model_validate(raw)
     except ValidationError as error:
-        raise UserError(_format_errors(error, source, model=ScenarioFile)) from None
+        raise UserError(format_errors(error, source, model=ScenarioFile)) from None
 
 
 def load_scenario(path: str | Path, channels: Sequence[Channel]) -> Profile:
