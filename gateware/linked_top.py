@@ -92,14 +92,7 @@ class LinkedTop(wiring.Component):
         m.d.comb += [
             urx.rx.eq(self.rx),
             self.tx.eq(utx.tx),
-            player.w_data.eq(host.w_data),
-            player.w_en.eq(host.w_en),
-            player.w_commit.eq(host.w_commit),
-            player.w_rollback.eq(host.w_rollback),
-            host.room.eq(player.room),
-            player.start.eq(host.start),
-            player.arm_on.eq(host.arm_on),
-            player.stop.eq(host.stop),
+            *host_to_player(host, player),
             emu.strobe.eq(self.strobe),
             emu.arm.eq(player.arm & self.arm),
             emu.rate_addr.eq(player.rate_addr),
@@ -168,6 +161,23 @@ class LinkedTop(wiring.Component):
                         tm.owed.eq(owed[i]),
                     ]
         return m
+
+
+def host_to_player(host: HostLink, player: SegmentPlayer) -> list:
+    """The statements that join the link's command layer to the segment player.
+
+    One place for them: the linked top and the link's test benches wire the two alike.
+    """
+    return [
+        player.w_data.eq(host.w_data),
+        player.w_en.eq(host.w_en),
+        player.w_commit.eq(host.w_commit),
+        player.w_rollback.eq(host.w_rollback),
+        host.room.eq(player.room),
+        player.start.eq(host.start),
+        player.arm_on.eq(host.arm_on),
+        player.stop.eq(host.stop),
+    ]
 
 
 def write_linked_verilog(link: LinkParams, path: str | Path | None = None) -> str:

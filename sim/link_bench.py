@@ -17,7 +17,7 @@ from amaranth.hdl import Module, Signal
 from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
-from dvgate.gateware.linked_top import LinkedTop
+from dvgate.gateware.linked_top import LinkedTop, host_to_player
 from dvgate.linkspec import BITS_PER_BYTE, LinkParams, Reason
 from dvgate.params import HardwareParams
 from dvgate.sim.link_model import WireByte
@@ -222,14 +222,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
         host, player = top.host, top.player
         status.update(
             cycle=ctx.get(cycle),
-            next_seq=ctx.get(host.next_seq),
-            accepted=ctx.get(host.accepted),
-            rejected={r: ctx.get(host.rejected[r]) for r in Reason},
-            play=ctx.get(player.play),
-            level=ctx.get(player.level),
-            played=ctx.get(player.played),
-            underruns=ctx.get(player.underruns),
-            armed=ctx.get(player.arm),
+            **_link_status(ctx, host, player),
             counts=[(ctx.get(p), ctx.get(q)) for p, q in top.counters],
             ignored=ctx.get(top.emulator.ignored),
         )
@@ -327,14 +320,7 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
     cycle = Signal(range(cycles + 2))
     m.d.sync += cycle.eq(cycle + 1)
     m.d.comb += [
-        player.w_data.eq(host.w_data),
-        player.w_en.eq(host.w_en),
-        player.w_commit.eq(host.w_commit),
-        player.w_rollback.eq(host.w_rollback),
-        host.room.eq(player.room),
-        player.start.eq(host.start),
-        player.arm_on.eq(host.arm_on),
-        player.stop.eq(host.stop),
+        *host_to_player(host, player),
         regs.addr.eq(player.rate_addr),
         regs.data.eq(player.rate_data),
         regs.we.eq(player.rate_we),
@@ -382,14 +368,7 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
             await ctx.tick().repeat(cycles - now)
         status.update(
             cycle=ctx.get(cycle),
-            next_seq=ctx.get(host.next_seq),
-            accepted=ctx.get(host.accepted),
-            rejected={r: ctx.get(host.rejected[r]) for r in Reason},
-            play=ctx.get(player.play),
-            level=ctx.get(player.level),
-            played=ctx.get(player.played),
-            underruns=ctx.get(player.underruns),
-            armed=ctx.get(player.arm),
+            **_link_status(ctx, host, player),
         )
 
     async def watch_rates(ctx) -> None:
@@ -430,3 +409,17 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
     replies = tuple(b"\x7e" + part for part in bytes(sent).split(b"\x7e")[1:])
     return LinkBytesRun(tuple(rejections), tuple(applied), tuple(rate_changes), tuple(arm_changes), replies, status,
                         tuple(fault_writes), tuple(ignore_writes))
+
+
+def _link_status(ctx, host, player) -> dict:
+    """The command layer's and the player's state, as both benches report it."""
+    return dict(
+        next_seq=ctx.get(host.next_seq),
+        accepted=ctx.get(host.accepted),
+        rejected={r: ctx.get(host.rejected[r]) for r in Reason},
+        play=ctx.get(player.play),
+        level=ctx.get(player.level),
+        played=ctx.get(player.played),
+        underruns=ctx.get(player.underruns),
+        armed=ctx.get(player.arm),
+    )
