@@ -21,6 +21,16 @@ def add_config_args(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--weight", metavar="Q", help="pulse weight for every channel, e.g. '0.01 m/s'")
 
 
+def add_link_args(parser: argparse.ArgumentParser) -> None:
+    """The serial port, config and reply timeout of the commands that talk to a board."""
+    parser.add_argument("--port", required=True, metavar="DEV",
+                        help="serial port (e.g. /dev/ttyUSB1, COM4, or the path `dvgate simboard` prints)")
+    parser.add_argument("--config", default="dvgate.toml",
+                        help="emulator config with its [link] section (default: dvgate.toml)")
+    parser.add_argument("--reply-timeout", type=float, default=1.0, metavar="S",
+                        help="seconds to wait for a telemetry reply (default 1; a simulated board needs 60 or more)")
+
+
 def config_from(args: argparse.Namespace) -> Config:
     """Load the config that the arguments name, retuned as they say."""
     return load_config(args.config, channels=args.channels, weight=args.weight)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from dvgate.commands._common import console
+from dvgate.commands._common import add_link_args, console
 from dvgate.commands.stream import EXIT_LINK_LOST
 from dvgate.config import load_config
 from dvgate.errors import UserError
@@ -64,10 +64,5 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="silence_pos, stuck_neg, swap, no_rest, 'storm=50 us', storm_neg, ... or none")
     parser.add_argument("--ignore-strobes", metavar="DURATION",
                         help="ignore the strobes detected in this window from now (e.g. '5 ms', '1200 cycles')")
-    parser.add_argument("--port", required=True, metavar="DEV",
-                        help="serial port (e.g. /dev/ttyUSB1, or the path `dvgate simboard` prints)")
-    parser.add_argument("--config", default="dvgate.toml",
-                        help="emulator config with its [link] section (default: dvgate.toml)")
-    parser.add_argument("--reply-timeout", type=float, default=1.0, metavar="S",
-                        help="seconds to wait for a telemetry reply (default 1; a simulated board needs 60 or more)")
+    add_link_args(parser)
     parser.set_defaults(func=run)

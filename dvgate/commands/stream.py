@@ -6,7 +6,7 @@ import argparse
 import sys
 
 from dvgate.cli import SAFETY
-from dvgate.commands._common import console, table
+from dvgate.commands._common import add_link_args, console, table
 from dvgate.config import load_config
 from dvgate.linkspec import link_params, link_settings
 from dvgate.stream import LinkLost, load_stream_program, open_port, progress_bar, stream
@@ -64,10 +64,5 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                     "emitted exactly what the program asked for. Exit status: 0 exact, 1 counts differ, "
                     f"2 bad input, {EXIT_LINK_LOST} link lost mid-stream.")
     parser.add_argument("program", help="pulse program (.npz)")
-    parser.add_argument("--port", required=True, metavar="DEV",
-                        help="serial port (e.g. /dev/ttyUSB1, COM4, or the path `dvgate simboard` prints)")
-    parser.add_argument("--config", default="dvgate.toml",
-                        help="emulator config with its [link] section (default: dvgate.toml)")
-    parser.add_argument("--reply-timeout", type=float, default=1.0, metavar="S",
-                        help="seconds to wait for a telemetry reply (default 1; a simulated board needs 60 or more)")
+    add_link_args(parser)
     parser.set_defaults(func=run)
