@@ -97,7 +97,6 @@ class RateAccumulator(wiring.Component):
         p = self._params
         frac = p.frac_bits
         owed = self.owed
-        one = 1 << frac
 
         n_acc = Signal.like(self.n)
         # The owed update splits at the binary point: the hand-over only changes the whole
@@ -111,14 +110,11 @@ class RateAccumulator(wiring.Component):
         hi        = Signal(signed(hi_w))
         over      = Signal()
         under     = Signal()
-        hi_max    = (1 << (p.owed_bits - 1)) - 1
-        hi_min    = -(1 << (p.owed_bits - 1))
         # The hand-over is decided one cycle ahead, from the owed amount the next cycle
         # will hold, and kept in registers: the strobe's cycle then only checks the
         # backlog. ``prepare`` (the detector's ``stb_next``) is high the cycle before every
         # strobe, and never on a strobe's own cycle, so that next owed amount is the one
         # with nothing handed over this cycle (``hi0``).
-        owed_nx0  = Signal.like(owed)
         hand_n    = Signal.like(self.n)
         hand_clmp = Signal()
 
@@ -130,33 +126,40 @@ class RateAccumulator(wiring.Component):
             # Both outcomes of the backlog check are ready before it decides between them.
             hi_t.eq(hi0 - hand_n),
             hi.eq(Mux(self.load, hi_t, hi0)),
-            over.eq(hi > hi_max),
-            under.eq(hi < hi_min),
+            # Past a limit when the bits above the owed register's sign disagree with it.
+            over.eq(~hi[-1] & hi[p.owed_bits - 1:].any()),
+            under.eq(hi[-1] & ~hi[p.owed_bits - 1:].all()),
             self.sat_evt.eq(self.armed & (over | under)),
         ]
-        with m.If(~self.armed):
-            m.d.comb += owed_nx0.eq(0)
-        with m.Elif(hi0 > hi_max):
-            m.d.comb += owed_nx0.eq(p.owed_max)
-        with m.Elif(hi0 < hi_min):
-            m.d.comb += owed_nx0.eq(p.owed_min)
-        with m.Else():
-            m.d.comb += owed_nx0.eq(Cat(lo[:frac], hi0[:p.owed_bits]))
-
+        # What a strobe next cycle asks for, from the next owed amount without building it:
+        # its whole part is ``hi0`` (floor) and its fraction ``lo``. A saturated next value
+        # asks for the same as ``hi0`` does (``owed_bits`` leaves room above the clamp: a
+        # value past a limit is clamped either way, and its sign decides binary and
+        # ternary), so only the disarmed case (next owed amount 0) is set apart.
         ask_n    = Signal.like(self.n)
         ask_clmp = Signal()
+        neg0     = hi0[-1]
+        frac_nz  = lo[:frac].any()
         if p.scheme == "burst":
-            whole = Signal(signed(p.owed_bits + 1))
-            # >> frac floors; a negative value with a fraction rounds up to truncate.
+            # Truncation toward zero: a negative amount with a fraction is one less whole.
+            up    = Signal()
+            low_n = Signal.like(self.n)
+            big_p = Signal()
+            big_n = Signal()
             m.d.comb += [
-                whole.eq((owed_nx0 >> frac) + (owed_nx0[-1] & (owed_nx0[:frac] != 0))),
-                ask_clmp.eq((whole > p.clamp) | (whole < -p.clamp)),
-                ask_n.eq(Mux(whole > p.clamp, p.clamp, Mux(whole < -p.clamp, -p.clamp, whole))),
+                up.eq(neg0 & frac_nz),
+                low_n.eq(hi0[:len(self.n)] + up),
+                big_p.eq(hi0 > p.clamp),
+                big_n.eq(hi0 < -p.clamp - up),
+                ask_clmp.eq(self.armed & (big_p | big_n)),
+                ask_n.eq(Mux(~self.armed, 0, Mux(big_p, p.clamp, Mux(big_n, -p.clamp, low_n)))),
             ]
         elif p.scheme == "binary":
-            m.d.comb += ask_n.eq(Mux(owed_nx0 >= 0, 1, -1))
-        else:  # ternary
-            m.d.comb += ask_n.eq(Mux(owed_nx0 >= one, 1, Mux(owed_nx0 <= -one, -1, 0)))
+            m.d.comb += ask_n.eq(Mux(~self.armed | ~neg0, 1, -1))
+        else:  # ternary: at least one whole pulse either way (-1 with no fraction is -one)
+            at_one   = hi0 >= 1
+            at_m_one = (hi0 < -1) | ((hi0 == -1) & ~frac_nz)
+            m.d.comb += ask_n.eq(Mux(~self.armed, 0, Mux(at_one, 1, Mux(at_m_one, -1, 0))))
         with m.If(self.prepare):
             m.d.sync += [hand_n.eq(ask_n), hand_clmp.eq(ask_clmp)]
 
