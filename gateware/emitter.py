@@ -106,20 +106,36 @@ class PulseEmitter(wiring.Component):
             avail_neg.eq(self.pend_neg + Mux(self.load, self.new_neg, 0)),
             may_start.eq((mode == Mode.IDLE) | ((mode == Mode.GAP) & (timer == 0))),
         ]
+        # Whether a line has a pulse to play comes from the registers and the hand-over's
+        # counts, not from the sums, so the choice does not wait for the adders.
+        has_pos = Signal()
+        has_neg = Signal()
+        start   = Signal()
+        dec_pos = Signal()
+        dec_neg = Signal()
+        m.d.comb += [
+            has_pos.eq((self.pend_pos != 0) | (self.load & (self.new_pos != 0))),
+            has_neg.eq((self.pend_neg != 0) | (self.load & (self.new_neg != 0))),
+        ]
         if p.order == "interleaved":
             # Both lines waiting: the one not started last; else the one that waits.
-            both = (avail_pos != 0) & (avail_neg != 0)
-            m.d.comb += pick.eq(Mux(both, ~last, avail_pos == 0))
+            m.d.comb += pick.eq(Mux(has_pos & has_neg, ~last, ~has_pos))
         else:
-            m.d.comb += pick.eq(avail_pos == 0)
+            m.d.comb += pick.eq(~has_pos)
+        m.d.comb += [
+            start.eq(self.armed & may_start & (has_pos | has_neg)),
+            dec_pos.eq(start & (pick == POS)),
+            dec_neg.eq(start & (pick == NEG)),
+        ]
 
-        # Defaults: hold the state, take the new pulses into the pending counts.
+        # Defaults: hold the state; the pending counts take the new pulses and give the
+        # one started.
         m.d.comb += [
             mode_next.eq(mode),
             timer_next.eq(timer),
             last_next.eq(last),
-            pos_next.eq(avail_pos),
-            neg_next.eq(avail_neg),
+            pos_next.eq(avail_pos - dec_pos),
+            neg_next.eq(avail_neg - dec_neg),
         ]
         with m.If(~self.armed):
             m.d.comb += [
@@ -129,19 +145,14 @@ class PulseEmitter(wiring.Component):
                 pos_next.eq(0),
                 neg_next.eq(0),
             ]
+        with m.Elif(start):
+            m.d.comb += [
+                mode_next.eq(Mode.HIGH),
+                timer_next.eq(p.width_cyc - 1),
+                last_next.eq(pick),
+            ]
         with m.Elif(may_start):
-            with m.If((avail_pos != 0) | (avail_neg != 0)):
-                m.d.comb += [
-                    mode_next.eq(Mode.HIGH),
-                    timer_next.eq(p.width_cyc - 1),
-                    last_next.eq(pick),
-                ]
-                with m.If(pick == NEG):
-                    m.d.comb += neg_next.eq(avail_neg - 1)
-                with m.Else():
-                    m.d.comb += pos_next.eq(avail_pos - 1)
-            with m.Else():
-                m.d.comb += mode_next.eq(Mode.IDLE)
+            m.d.comb += mode_next.eq(Mode.IDLE)
         with m.Elif((mode == Mode.HIGH) & (timer == 0)):
             m.d.comb += [
                 mode_next.eq(Mode.GAP),
