@@ -14,8 +14,10 @@ class FrameEncoder(wiring.Component):
     """Send flag, type, length, payload and CRC-16 (big-endian), escaping as it goes.
 
     The payload is not held here: while sending, the encoder shows the index of the
-    payload byte it needs on ``idx`` and reads ``data`` in the same cycle (the parent
-    muxes it from a snapshot that stays still until ``busy`` falls).
+    payload byte it needs on ``idx`` and reads ``data`` in the same cycle. ``take`` marks
+    the cycle it is done with that byte (``idx`` moves on at the next one), so a parent
+    may read its payload from a shift register or, one cycle ahead at ``next_idx``, from
+    a memory.
 
     With ``pad_to``, the frame is followed by filler bytes (:data:`FILLER`, outside any
     frame) until ``pad_to`` bytes have been sent in all, so every frame takes the same
@@ -39,6 +41,10 @@ class FrameEncoder(wiring.Component):
         Index of the payload byte wanted.
     data : Signal(8), in
         The payload byte at ``idx``.
+    take : Signal(1), out
+        The payload byte at ``idx`` has been sent (with its escape): ``idx`` moves on.
+    next_idx : Signal(8), out
+        ``idx`` as it will be on the next cycle (the address for a memory read ahead).
     o : stream.Signature(8), out
         Bytes for the UART transmitter.
     busy : Signal(1), out
@@ -58,6 +64,8 @@ class FrameEncoder(wiring.Component):
             "length": In(8),
             "idx": Out(8),
             "data": In(8),
+            "take": Out(1),
+            "next_idx": Out(8),
             "o": Out(stream.Signature(8)),
             "busy": Out(1),
         })
@@ -74,8 +82,10 @@ class FrameEncoder(wiring.Component):
         value   = Signal(8)
         special = Signal()
 
+        step = Signal()
         m.d.comb += [
             self.idx.eq(j - 2),
+            self.next_idx.eq(j + step - 2),
             special.eq((value == FLAG) | (value == ESC)),
             gen.data.eq(value),
         ]
@@ -115,7 +125,8 @@ class FrameEncoder(wiring.Component):
                         m.d.sync += escaped.eq(1)
                     with m.Else():
                         m.d.sync += [escaped.eq(0), j.eq(j + 1)]
-                        m.d.comb += gen.valid.eq(j < length + 2)
+                        m.d.comb += [step.eq(1), gen.valid.eq(j < length + 2),
+                                     self.take.eq((j >= 2) & (j < length + 2))]
                         with m.If(j == length + 3):
                             m.next = "PAD" if self._pad_to is not None else "IDLE"
             if self._pad_to is not None:

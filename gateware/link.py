@@ -9,8 +9,8 @@ A FAULT or IGNORE frame applied at cycle ``e`` drives the emulator's fault port 
 ignore port) at ``e + 1``, from registers, so its setting holds from ``e + 2``.
 """
 
-from amaranth.hdl import Cat, Module, Signal, signed, unsigned
-from amaranth.lib import data, stream, wiring
+from amaranth.hdl import Cat, Module, Mux, Signal, signed, unsigned
+from amaranth.lib import data, memory, stream, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.faults import FaultLayout
@@ -34,6 +34,40 @@ from dvgate.linkspec import (
 from dvgate.params import IGNORE_CYCLES_BITS, STORM_PERIOD_BITS
 
 _COUNT_MAX = (1 << COUNT_BITS) - 1
+
+#: Words of the link's counter memory (16 bits each, in the telemetry's order):
+#: ``accepted`` (low half, high half), then one rejection counter per :class:`Reason`.
+ACCEPTED_WORD = 0
+COUNTER_WORDS = 2 + len(Reason)
+#: The telemetry fields the link keeps in its counter memory, in payload order.
+COUNTER_FIELDS = ("accepted", *(f"rej_{r.name.lower()}" for r in Reason))
+#: The telemetry fields the link reads from outside while it sends a reply (``ext``).
+EXTERNAL_FIELDS = ("pos", "neg")
+
+
+def reject_word(reason: Reason) -> int:
+    """The counter memory's word that counts ``reason``."""
+    return 2 + int(reason)
+
+
+def field_offsets(link: LinkParams) -> dict[str, tuple[int, int]]:
+    """Each telemetry field's ``(offset, size)`` in bytes in the reply's payload."""
+    out, at = {}, 0
+    for f in link.telemetry_fields:
+        out[f.name] = (at, f.size)
+        at += f.size
+    return out
+
+
+def _span(offsets: dict[str, tuple[int, int]], names: tuple[str, ...]) -> tuple[int, int]:
+    """``(first byte, byte count)`` of fields that follow each other in the payload."""
+    first = offsets[names[0]][0]
+    at = first
+    for name in names:
+        if offsets[name][0] != at:
+            raise ValueError(f"telemetry field {name!r} does not follow {names[0]!r}'s group")
+        at += offsets[name][1]
+    return first, at - first
 
 
 def telemetry_layout(link: LinkParams) -> data.StructLayout:
@@ -75,7 +109,17 @@ class HostLink(wiring.Component):
         Channel of the last telemetry request (selects the channel fields of ``tm``).
     tm : telemetry_layout(link), in
         The board's telemetry as it stands; the link fills its own fields itself
-        (``next_seq``, ``accepted``, the rejection counters and ``channel``).
+        (``next_seq``, ``accepted``, the rejection counters and ``channel``) and reads
+        ``pos`` and ``neg`` through ``ext_*`` instead.
+    tm_stb : Signal(1), out
+        A telemetry request is applied this cycle: the instant the reply describes.
+    ext_idx, ext_next : Signal(8), out
+        While a reply is sent: the payload byte wanted now, and the one wanted on the
+        next cycle (for a memory read ahead).
+    ext_take : Signal(1), out
+        The payload byte at ``ext_idx`` was sent.
+    ext_data : Signal(8), in
+        The payload byte at ``ext_idx`` when it is a byte of ``pos`` or ``neg``.
     fault_addr, fault_data, fault_we : out
         The emulator's fault port: an applied FAULT frame's channel and whole fault set,
         written (``fault_we``) on the cycle after the frame is applied.
@@ -84,12 +128,16 @@ class HostLink(wiring.Component):
         after the frame is applied.
     next_seq : Signal(16), out
         Sequence number the next segment, command or fault setting must carry.
-    accepted : Signal(32), out
-        Frames applied (wraps).
-    rejected : ArrayLayout(16, 8), out
-        Frames rejected, by reason (saturating).
+    apply_stb : Signal(1), out
+        A frame is applied this cycle.
     reject_stb : Signal(1), out
-        A frame was rejected this cycle.
+        A frame is rejected this cycle, for ``reason``.
+    reason : Signal(3), out
+        With ``reject_stb``: a :class:`dvgate.linkspec.Reason`.
+    counters : Memory
+        Frames applied (``accepted``, 32 bits, wraps) and rejected by reason (16 bits,
+        saturating), as 16-bit words (:data:`ACCEPTED_WORD`, :func:`reject_word`); each
+        count is written one cycle after its frame ends.
     """
 
     def __init__(self, link: LinkParams) -> None:
@@ -108,16 +156,28 @@ class HostLink(wiring.Component):
             "stop": Out(1),
             "tm_channel": Out(8),
             "tm": In(self._layout),
+            "tm_stb": Out(1),
+            "ext_idx": Out(8),
+            "ext_next": Out(8),
+            "ext_take": Out(1),
+            "ext_data": In(8),
             "fault_addr": Out(addr_bits(link.hw)),
             "fault_data": Out(FaultLayout),
             "fault_we": Out(1),
             "ignore_we": Out(1),
             "ignore_cycles": Out(IGNORE_CYCLES_BITS),
             "next_seq": Out(SEQ_BITS),
-            "accepted": Out(32),
-            "rejected": Out(data.ArrayLayout(COUNT_BITS, len(Reason))),
+            "apply_stb": Out(1),
             "reject_stb": Out(1),
+            "reason": Out(REASON_BITS),
         })
+        offsets = field_offsets(link)
+        self._counter_span = _span(offsets, COUNTER_FIELDS)
+        self._ext_span = _span(offsets, EXTERNAL_FIELDS)
+        if self._counter_span[1] != 2 * COUNTER_WORDS:
+            raise ValueError("the counter fields must fill the counter memory's words")
+        self.counters = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[])
+        self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[])
         # The arguments of FAULT and IGNORE frames are shifted into the duration's register.
         if 8 * max(2 + STORM_BYTES, IGNORE_BYTES) > DURATION_BITS:
             raise ValueError("the FAULT and IGNORE arguments must fit the duration register")
@@ -143,7 +203,6 @@ class HostLink(wiring.Component):
         last     = Signal()
         acc      = Signal(8 * rb)
         sub      = Signal(range(rb))
-        snapshot = Signal(self._layout)
         busy     = Signal(range(link.reply_busy_cyc))
         reason   = Signal(REASON_BITS)
         count    = Signal()
@@ -255,29 +314,107 @@ class HostLink(wiring.Component):
         ]
         for bit, name in enumerate(FAULT_SET_BITS):
             m.d.comb += getattr(self.fault_data, name).eq(f_set[bit])
-        with m.If(count):
-            for r in Reason:
-                with m.If((reason == r) & (self.rejected[r] != _COUNT_MAX)):
-                    m.d.sync += self.rejected[r].eq(self.rejected[r] + 1)
-        with m.If(apply):
-            m.d.sync += self.accepted.eq(self.accepted + 1)
-            with m.If(is_seq):
-                m.d.sync += self.next_seq.eq(self.next_seq + 1)
-            with m.If(is_tm):
-                m.d.sync += [snapshot.eq(self.tm), busy.eq(link.reply_busy_cyc - 1)]
-                m.d.sync += [
-                    snapshot.next_seq.eq(self.next_seq),
-                    snapshot.accepted.eq(self.accepted),
-                    snapshot.channel.eq(self.tm_channel),
-                ]
-                for r in Reason:
-                    m.d.sync += getattr(snapshot, f"rej_{r.name.lower()}").eq(self.rejected[r])
-                m.d.comb += [
-                    enc.start.eq(1),
-                    enc.type.eq(FrameType.TELEMETRY_REPLY),
-                    enc.length.eq(link.payload_len(FrameType.TELEMETRY_REPLY)),
-                ]
+        m.d.comb += [self.apply_stb.eq(apply), self.reason.eq(reason), self.tm_stb.eq(apply & is_tm)]
+        with m.If(apply & is_seq):
+            m.d.sync += self.next_seq.eq(self.next_seq + 1)
+        with m.If(apply & is_tm):
+            m.d.sync += busy.eq(link.reply_busy_cyc - 1)
+            m.d.comb += [
+                enc.start.eq(1),
+                enc.type.eq(FrameType.TELEMETRY_REPLY),
+                enc.length.eq(link.payload_len(FrameType.TELEMETRY_REPLY)),
+            ]
 
-        # The reply's bytes straight from the snapshot, which stays still while it is sent.
-        m.d.comb += enc.data.eq(snapshot.as_value().word_select(enc.idx, 8))
+        # -- counters: one memory, read, added to and written back --------------------------
+        # A frame's count is read on the cycle it ends and written on the next. A carry out
+        # of ``accepted``'s low half is added to its high half one cycle later: the next
+        # frame ends two cycles after an applied one at the earliest (its last byte comes
+        # two cycles after the applied frame's last; a timeout needs far longer).
+        m.submodules.counters = counters = self.counters
+        m.submodules.frozen = frozen = self._frozen
+        c_wr   = counters.write_port()
+        c_upd  = counters.read_port(transparent_for=(c_wr,))
+        c_rd   = counters.read_port(transparent_for=())
+        f_wr   = frozen.write_port()
+        f_rd   = frozen.read_port(transparent_for=())
+
+        upd    = Signal()
+        word   = Signal(range(COUNTER_WORDS))
+        p_upd  = Signal()
+        p_word = Signal.like(word)
+        old    = c_upd.data
+        full   = old == _COUNT_MAX
+        carry  = p_upd & (p_word == ACCEPTED_WORD) & full
+        write  = p_upd & ~((p_word >= reject_word(Reason(0))) & full)
+        # Words changed since the last telemetry request: their value at that instant is in
+        # ``frozen`` (copied there on the first change), the others' still in ``counters``.
+        copied = Signal(COUNTER_WORDS)
+
+        with m.If(carry):
+            m.d.comb += [upd.eq(1), word.eq(ACCEPTED_WORD + 1)]
+        with m.Elif(apply):
+            m.d.comb += [upd.eq(1), word.eq(ACCEPTED_WORD)]
+        with m.Elif(count):
+            m.d.comb += [upd.eq(1), word.eq(2 + reason)]
+        m.d.sync += [p_upd.eq(upd), p_word.eq(word)]
+        m.d.comb += [
+            c_upd.addr.eq(word),
+            c_wr.addr.eq(p_word),
+            c_wr.data.eq(old + 1),
+            c_wr.en.eq(write),
+            f_wr.addr.eq(p_word),
+            f_wr.data.eq(old),
+            f_wr.en.eq(write & ~copied.bit_select(p_word, 1)),
+        ]
+        with m.If(write):
+            m.d.sync += copied.bit_select(p_word, 1).eq(1)
+        with m.If(apply & is_tm):
+            m.d.sync += copied.eq(0)
+
+        # -- the reply -----------------------------------------------------------------------
+        # Everything the reply describes is taken on the cycle the request is applied: the
+        # link's counters by the copy-on-change above, ``pos`` and ``neg`` outside (``ext``),
+        # every other byte into a shift register that moves on one byte per byte sent.
+        c_first, c_len = self._counter_span
+        x_first, x_len = self._ext_span
+        fields = field_offsets(link)
+        tm_bytes = self.tm.as_value()
+        own = {"next_seq": self.next_seq, "channel": self.tm_channel}
+        shifted = []
+        for name, (at, size) in fields.items():
+            if name in COUNTER_FIELDS or name in EXTERNAL_FIELDS:
+                continue
+            if name in own:
+                shifted.append(own[name][:8 * size])
+            else:
+                shifted.append(tm_bytes[8 * at: 8 * (at + size)])
+        held = Signal(sum(len(v) for v in shifted))
+
+        idx, nidx = enc.idx, enc.next_idx
+        in_counts = (idx >= c_first) & (idx < c_first + c_len)
+        in_ext    = (idx >= x_first) & (idx < x_first + x_len)
+        from_held = ~in_counts & ~in_ext
+        use_f     = Signal()
+        n_word    = Signal(8)
+        m.d.comb += [
+            n_word.eq((nidx - c_first) >> 1),
+            c_rd.addr.eq(n_word),
+            f_rd.addr.eq(n_word),
+            self.ext_idx.eq(idx),
+            self.ext_next.eq(nidx),
+            self.ext_take.eq(enc.take),
+        ]
+        m.d.sync += use_f.eq(copied.bit_select(n_word[:len(word)], 1))
+        counted = Mux(use_f, f_rd.data, c_rd.data)
+        half = (idx - c_first)[0]
+        with m.If(apply & is_tm):
+            m.d.sync += held.eq(Cat(*shifted))
+        with m.Elif(enc.take & from_held):
+            m.d.sync += held.eq(held[8:])
+        with m.If(in_counts):
+            m.d.comb += enc.data.eq(Mux(half, counted[8:], counted[:8]))
+        with m.Elif(in_ext):
+            m.d.comb += enc.data.eq(self.ext_data)
+        with m.Else():
+            m.d.comb += enc.data.eq(held[:8])
         return m

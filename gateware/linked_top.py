@@ -6,19 +6,17 @@ for LEDs. Rules: ``docs/link.md`` (the link) and ``docs/timing.md`` (the emulato
 
 from pathlib import Path
 
-from amaranth.hdl import Cat, Module, Signal
+from amaranth.hdl import Cat, Module
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.link import HostLink
+from dvgate.gateware.link import HostLink, field_offsets
+from dvgate.gateware.pulse_counts import PulseCounters
 from dvgate.gateware.segments import SegmentPlayer
 from dvgate.gateware.top import Emulator, component_verilog
 from dvgate.gateware.uart_rx import UartRx
 from dvgate.gateware.uart_tx import UartTx
 from dvgate.linkspec import FLAG_BITS, LinkParams
-
-#: Width of the per-line pulse counters (wrap).
-PULSE_COUNT_BITS = 32
 
 
 class LinkedTop(wiring.Component):
@@ -48,7 +46,7 @@ class LinkedTop(wiring.Component):
     armed, playing, starved, link_error : Signal(1), out
         Status for LEDs: outputs armed; playing a program; out of segments (underrun);
         a frame was rejected (sticky until reset).
-    emulator, player, host : components
+    emulator, player, host, counters : components
         The parts (for testbenches).
     """
 
@@ -71,10 +69,12 @@ class LinkedTop(wiring.Component):
         self.host = HostLink(link)
         self.uart_rx = UartRx(link.bit_cyc)
         self.uart_tx = UartTx(link.bit_cyc)
-        self.counters: list[tuple[Signal, Signal]] = [
-            (Signal(PULSE_COUNT_BITS, name=f"{name}_pos_count"), Signal(PULSE_COUNT_BITS, name=f"{name}_neg_count"))
-            for name in hw.names
-        ]
+        base = field_offsets(link)["pos"][0]
+        # The counters set each total aside within 2 n cycles of the request; the reply
+        # reaches ``pos`` only after its first ``base + 3`` bytes have left.
+        if (base + 3) * link.byte_cyc <= 2 * hw.n + 2:
+            raise ValueError(f"{hw.n} channels are too many for the pulse counters at {link.bit_cyc} cycles per bit")
+        self.counters = PulseCounters(hw.n, base)
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -86,6 +86,7 @@ class LinkedTop(wiring.Component):
         m.submodules.host = host = self.host
         m.submodules.uart_rx = urx = self.uart_rx
         m.submodules.uart_tx = utx = self.uart_tx
+        m.submodules.counters = counters = self.counters
 
         wiring.connect(m, urx.o, host.i)
         wiring.connect(m, host.o, utx.i)
@@ -113,7 +114,7 @@ class LinkedTop(wiring.Component):
 
         # Pulses started on each line: rising edges of the logical lines. A pulse counts
         # from the cycle its line is high, the cycle the emitter's pending count drops.
-        pos_now, neg_now, pend_pos, pend_neg, owed = [], [], [], [], []
+        pend_pos, pend_neg, owed, lines = [], [], [], []
         for i, name in enumerate(hw.names):
             em = emu.emitters[i]
             pos_port, neg_port = emu.output_ports(i)
@@ -121,18 +122,19 @@ class LinkedTop(wiring.Component):
                 getattr(self, f"{name}_pos").eq(pos_port),
                 getattr(self, f"{name}_neg").eq(neg_port),
             ]
-            for line, (count, label) in ((em.pos, (self.counters[i][0], "pos")),
-                                         (em.neg, (self.counters[i][1], "neg"))):
-                before = Signal(name=f"{name}_{label}_before")
-                rise = Signal(name=f"{name}_{label}_rise")
-                now = Signal(PULSE_COUNT_BITS, name=f"{name}_{label}_now")
-                m.d.sync += before.eq(line)
-                m.d.comb += [rise.eq(line & ~before), now.eq(count + rise)]
-                m.d.sync += count.eq(now)
-                (pos_now if label == "pos" else neg_now).append(now)
+            lines += [em.pos, em.neg]
             pend_pos.append(em.pend_pos)
             pend_neg.append(em.pend_neg)
             owed.append(emu.accumulators[i].owed)
+        m.d.comb += [
+            counters.lines.eq(Cat(*lines)),
+            counters.snap.eq(host.tm_stb),
+            counters.channel.eq(host.tm_channel),
+            counters.idx.eq(host.ext_idx),
+            counters.next_idx.eq(host.ext_next),
+            counters.take.eq(host.ext_take),
+            host.ext_data.eq(counters.data),
+        ]
 
         tm = host.tm
         # The state byte: play (bits 0-1), armed by the host, arm pin, host absent (STATE_BITS).
@@ -154,8 +156,6 @@ class LinkedTop(wiring.Component):
             for i in range(hw.n):
                 with m.Case(i):
                     m.d.comb += [
-                        tm.pos.eq(pos_now[i]),
-                        tm.neg.eq(neg_now[i]),
                         tm.pend_pos.eq(pend_pos[i]),
                         tm.pend_neg.eq(pend_neg[i]),
                         tm.owed.eq(owed[i]),

@@ -13,10 +13,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from amaranth.hdl import Module, Signal
+from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
+from dvgate.gateware.link import ACCEPTED_WORD, reject_word
 from dvgate.gateware.linked_top import LinkedTop, host_to_player
 from dvgate.linkspec import BITS_PER_BYTE, LinkParams, Reason
 from dvgate.params import HardwareParams
@@ -223,7 +224,7 @@ def run_linked(link: LinkParams, wire: Sequence[WireByte], cycles: int, *,
         status.update(
             cycle=ctx.get(cycle),
             **_link_status(ctx, host, player),
-            counts=[(ctx.get(p), ctx.get(q)) for p, q in top.counters],
+            counts=[tuple(_pulse_count(ctx, top.counters, 2 * i + k) for k in range(2)) for i in range(hw.n)],
             ignored=ctx.get(top.emulator.ignored),
         )
 
@@ -383,20 +384,20 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
         async for _, value in ctx.changed(out_count).sample(out_byte):
             sent.append(value)
 
-    prev = {"accepted": 0, "rejected": {r: 0 for r in Reason}}
+    # Each frame's outcome, latched, so the watcher wakes once per frame that ends.
+    ends, outcome = Signal(16), Signal(4)
+    with m.If(host.apply_stb | host.reject_stb):
+        m.d.sync += [ends.eq(ends + 1), outcome.eq(Mux(host.apply_stb, len(Reason), host.reason))]
 
     async def watch_outcomes(ctx) -> None:
-        counters = host.rejected.as_value()
-        async for acc, raw, at in ctx.changed(host.accepted, counters).sample(cycle):
-            values = [(raw >> (16 * r)) & 0xFFFF for r in Reason]
-            # A counter changes on the edge after the frame ends: the end was at at - 1.
-            if acc != prev["accepted"]:
+        async for _, kind, at in ctx.changed(ends).sample(outcome, cycle):
+            if not at:  # the first wake-up, at cycle 0, gives the values at reset
+                continue
+            # The latch changes on the edge after the frame ends: the end was at at - 1.
+            if kind == len(Reason):
                 applied.append(at - 1)
-                prev["accepted"] = acc
-            for r, v in zip(Reason, values, strict=True):
-                if v != prev["rejected"][r]:
-                    rejections.append((at - 1, r))
-                    prev["rejected"][r] = v
+            else:
+                rejections.append((at - 1, Reason(kind)))
 
     sim = Simulator(m)
     sim.add_clock(1e-6)
@@ -411,12 +412,19 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
                         tuple(fault_writes), tuple(ignore_writes))
 
 
+def _pulse_count(ctx, counters, line: int) -> int:
+    """A line's pulse count: its total in memory plus its pending edges (wraps at 32 bits)."""
+    return (ctx.get(counters.totals.data[line]) + ctx.get(counters.pending[line])) & 0xFFFF_FFFF
+
+
 def _link_status(ctx, host, player) -> dict:
     """The command layer's and the player's state, as both benches report it."""
+    words = host.counters.data
+    low, high = (ctx.get(words[ACCEPTED_WORD + k]) for k in range(2))
     return dict(
         next_seq=ctx.get(host.next_seq),
-        accepted=ctx.get(host.accepted),
-        rejected={r: ctx.get(host.rejected[r]) for r in Reason},
+        accepted=low | high << 16,
+        rejected={r: ctx.get(words[reject_word(r)]) for r in Reason},
         play=ctx.get(player.play),
         level=ctx.get(player.level),
         played=ctx.get(player.played),

@@ -1,0 +1,153 @@
+"""Pulse counters of every output line, in block RAM, for the telemetry's ``pos`` and ``neg``.
+
+Rules: ``docs/link.md``, section "Telemetry". Each line keeps only a small count of the
+rising edges not yet added in flip-flops; one adder visits the lines in turn, one per
+cycle, and adds that count to the line's 32-bit total in a memory. A line's count at
+any cycle is its total in memory plus its pending edges plus a rise on that cycle.
+"""
+
+from amaranth.hdl import Module, Mux, Signal
+from amaranth.lib import memory, wiring
+from amaranth.lib.wiring import In, Out
+
+#: Width of the per-line pulse counters (wrap).
+PULSE_COUNT_BITS = 32
+
+
+class PulseCounters(wiring.Component):
+    """Count the rising edges of ``2 n`` lines; give one channel's two counts byte by byte.
+
+    Line ``2 i`` is channel ``i``'s positive line, ``2 i + 1`` its negative one. A line
+    rises at most every other cycle, so between two visits of the adder (``2 n`` cycles)
+    it gathers at most ``n`` pending edges.
+
+    For the telemetry, ``snap`` marks the instant (cycle ``e``) the reply describes, for
+    channel ``channel``. The two counts at ``e`` are the totals in memory at ``e`` plus
+    the pending edges and the rises at ``e``: the pending parts are kept at ``e``, and each
+    total is copied aside when the adder next visits its line (by ``e + 2 n``, before it
+    adds anything newer). The reply then reads the eight bytes (``pos``, then ``neg``,
+    little-endian) at payload offsets ``base .. base + 7``, adding the pending part byte by
+    byte as they are sent.
+
+    Parameters
+    ----------
+    n : int
+        Channel count.
+    base : int
+        Payload offset of the first byte of ``pos``.
+
+    Attributes
+    ----------
+    lines : Signal(2 n), in
+        The logical lines, ``2 i`` positive and ``2 i + 1`` negative of channel ``i``.
+    snap : Signal(1), in
+        The telemetry's instant.
+    channel : Signal(8), in
+        The channel to report, read with ``snap``.
+    idx, next_idx : Signal(8), in
+        Payload byte wanted now, and on the next cycle.
+    take : Signal(1), in
+        The byte at ``idx`` was sent.
+    data : Signal(8), out
+        The byte at ``idx`` (when it is one of the eight).
+    totals : Memory
+        Each line's total in memory (its count is that plus :meth:`pending`).
+    """
+
+    def __init__(self, n: int, base: int) -> None:
+        if n < 1:
+            raise ValueError(f"n must be at least 1, not {n!r}")
+        self._n = n
+        self._base = base
+        super().__init__({
+            "lines": In(2 * n),
+            "snap": In(1),
+            "channel": In(8),
+            "idx": In(8),
+            "next_idx": In(8),
+            "take": In(1),
+            "data": Out(8),
+        })
+        #: Pending edges per line: at most ``n`` (see the class docstring).
+        self.pending = [Signal(n.bit_length(), name=f"pend{k}") for k in range(2 * n)]
+        self.totals = memory.Memory(shape=PULSE_COUNT_BITS, depth=2 * n, init=[])
+        self._aside = memory.Memory(shape=PULSE_COUNT_BITS, depth=2, init=[])
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        n, base = self._n, self._base
+        slots = 2 * n
+        m.submodules.totals = totals = self.totals
+        m.submodules.aside = aside = self._aside
+        t_wr = totals.write_port()
+        t_rd = totals.read_port(transparent_for=())
+        a_wr = aside.write_port()
+        a_rd = aside.read_port(transparent_for=())
+
+        before = Signal(slots)
+        rise   = Signal(slots)
+        slot   = Signal(range(slots))
+        after  = Signal(range(slots))
+        chan   = Signal(range(n))
+        want   = Signal(2)
+        extra  = [Signal(n.bit_length() + 1, name=f"extra_{label}") for label in ("pos", "neg")]
+        carry  = Signal()
+        pend   = Signal(n.bit_length())
+
+        m.d.sync += before.eq(self.lines)
+        m.d.comb += [
+            rise.eq(self.lines & ~before),
+            after.eq(Mux(slot == slots - 1, 0, slot + 1)),
+        ]
+        m.d.sync += slot.eq(after)
+
+        # The adder: line ``slot``'s total (read on the cycle before) plus its pending edges.
+        with m.Switch(slot):
+            for k in range(slots):
+                with m.Case(k):
+                    m.d.comb += pend.eq(self.pending[k])
+        m.d.comb += [
+            t_rd.addr.eq(after),
+            t_wr.addr.eq(slot),
+            t_wr.data.eq(t_rd.data + pend),
+            t_wr.en.eq(1),
+        ]
+        for k in range(slots):
+            m.d.sync += self.pending[k].eq(Mux(slot == k, 0, self.pending[k]) + rise[k])
+
+        # The telemetry's instant: keep the pending parts, and copy each total aside on the
+        # adder's first visit of its line from ``e`` on (on ``e`` itself the memory still
+        # holds the total at ``e``, and no visit in between changes it).
+        channel = Signal(range(n))
+        m.d.comb += channel.eq(Mux(self.snap, self.channel, chan))
+        wanted = Signal(2)
+        m.d.comb += wanted.eq(Mux(self.snap, 0b11, want))
+        hit = Signal()
+        which = slot[0]
+        m.d.comb += hit.eq(((slot >> 1) == channel) & wanted.bit_select(which, 1))
+        m.d.comb += [a_wr.addr.eq(which), a_wr.data.eq(t_rd.data), a_wr.en.eq(hit)]
+        with m.If(self.snap):
+            m.d.sync += chan.eq(self.channel)
+            for k, label_extra in enumerate(extra):
+                pick = Signal(n.bit_length() + 1, name=f"pick{k}")
+                with m.Switch(self.channel):
+                    for i in range(n):
+                        with m.Case(i):
+                            m.d.comb += pick.eq(self.pending[2 * i + k] + rise[2 * i + k])
+                m.d.sync += label_extra.eq(pick)
+        m.d.sync += want.eq(wanted & ~Mux(hit, 1 << which, 0))
+
+        # The reply's bytes: the total set aside plus the pending part, byte by byte.
+        offset = Signal(8)
+        n_off  = Signal(8)
+        m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.next_idx - base), a_rd.addr.eq(n_off[2])]
+        lane  = offset[:2]
+        first = lane == 0
+        total = a_rd.data.word_select(lane, 8)
+        add   = Mux(first, Mux(offset[2], extra[1], extra[0]), 0)
+        total_sum = Signal(9)
+        m.d.comb += [total_sum.eq(total + add + (carry & ~first)), self.data.eq(total_sum[:8])]
+        inside = offset < 8
+        with m.If(self.take & inside):
+            m.d.sync += carry.eq(total_sum[8])
+        return m
