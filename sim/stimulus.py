@@ -36,7 +36,8 @@ def integral(params: HardwareParams, stim: Stimulus, channel: int, armed: list[t
     computed from the stimulus alone, independently of any engine.
     """
     upto = stim.cycles if upto is None else upto
-    starts = [a for a, _ in armed if a < upto]
+    # An arming at ``upto`` itself is the last one: nothing is integrated since.
+    starts = [a for a, _ in armed if a <= upto]
     if not starts:
         return 0
     begin = starts[-1]

@@ -158,6 +158,15 @@ def test_never_armed_stays_idle(tmp_path):
     assert_same(params, stim, tmp_path)
 
 
+def test_armed_again_on_the_last_cycle(tmp_path):
+    # Re-armed so that the outputs are armed from cycle N itself: the books at N are those
+    # of an arming at N (nothing owed yet), not of the earlier armed stretch. Found by the
+    # random test below.
+    params = many(1, scheme="binary", rest=0)
+    stim = Stimulus(cycles=23, strobe_edges=(), arm_changes=((0, True), (1, False), (22, True)))
+    assert_same(params, stim, tmp_path)
+
+
 def test_example_config(tmp_path):
     config = load_config("dvgate/examples/bench.toml")
     # a shortened strobe period so a few strobes fit in a quick run
