@@ -98,12 +98,16 @@ class PulseEmitter(wiring.Component):
         pos_next   = Signal.like(self.pend_pos)
         neg_next   = Signal.like(self.pend_neg)
 
+        # One sum per line serves both the backlog check and the load.
+        sum_pos = Signal.like(avail_pos)
+        sum_neg = Signal.like(avail_neg)
         m.d.comb += [
-            self.accept.eq(self.pend_pos + self.pend_neg + self.new_pos + self.new_neg
-                           <= p.backlog),
+            sum_pos.eq(self.pend_pos + self.new_pos),
+            sum_neg.eq(self.pend_neg + self.new_neg),
+            self.accept.eq(sum_pos + sum_neg <= p.backlog),
             self.busy.eq(mode != Mode.IDLE),
-            avail_pos.eq(self.pend_pos + Mux(self.load, self.new_pos, 0)),
-            avail_neg.eq(self.pend_neg + Mux(self.load, self.new_neg, 0)),
+            avail_pos.eq(Mux(self.load, sum_pos, self.pend_pos)),
+            avail_neg.eq(Mux(self.load, sum_neg, self.pend_neg)),
             may_start.eq((mode == Mode.IDLE) | ((mode == Mode.GAP) & (timer == 0))),
         ]
         # Whether a line has a pulse to play comes from the registers and the hand-over's
