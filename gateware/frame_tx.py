@@ -30,6 +30,9 @@ class FrameEncoder(wiring.Component):
     pad_to : int, optional
         Bytes to send per frame, filler included (at least the longest stuffed frame,
         ``1 + 2 * (max_len + 4)``).
+    frame : (int, int), optional
+        Send only frames of this type and payload length (``type`` and ``length`` are then
+        not read): no registers for them, and comparisons with constants.
 
     Attributes
     ----------
@@ -51,9 +54,12 @@ class FrameEncoder(wiring.Component):
         A frame is being sent.
     """
 
-    def __init__(self, max_len: int, pad_to: int | None = None) -> None:
+    def __init__(self, max_len: int, pad_to: int | None = None, frame: tuple[int, int] | None = None) -> None:
         if not 1 <= max_len <= 255:
             raise ValueError(f"max_len must be 1 to 255, not {max_len!r}")
+        if frame is not None and not (0 <= frame[0] <= 255 and 1 <= frame[1] <= max_len):
+            raise ValueError(f"frame must be a type byte and a length of 1 to {max_len}, not {frame!r}")
+        self._frame = frame
         if pad_to is not None and pad_to < 1 + 2 * (max_len + 4):
             raise ValueError(f"pad_to must be at least {1 + 2 * (max_len + 4)} bytes, not {pad_to!r}")
         self._max_len = max_len
@@ -74,8 +80,10 @@ class FrameEncoder(wiring.Component):
         m = Module()
         m.submodules.crc = gen = crc.catalog.CRC16_CCITT_FALSE(data_width=8).create()
 
-        ftype   = Signal(8)
-        length  = Signal(8)
+        if self._frame is None:
+            ftype, length = Signal(8), Signal(8)
+        else:
+            ftype, length = self._frame
         count   = Signal(range(max(self._pad_to or 0, 1 + 2 * (self._max_len + 4)) + 1))
         j       = Signal(9)
         escaped = Signal()
@@ -106,8 +114,9 @@ class FrameEncoder(wiring.Component):
         with m.FSM():
             with m.State("IDLE"):
                 with m.If(self.start):
-                    m.d.sync += [ftype.eq(self.type), length.eq(self.length), j.eq(0), escaped.eq(0),
-                                 count.eq(0)]
+                    m.d.sync += [j.eq(0), escaped.eq(0), count.eq(0)]
+                    if self._frame is None:
+                        m.d.sync += [ftype.eq(self.type), length.eq(self.length)]
                     m.d.comb += gen.start.eq(1)
                     m.next = "FLAG"
             with m.State("FLAG"):

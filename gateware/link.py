@@ -17,6 +17,7 @@ from dvgate.gateware.faults import FaultLayout
 from dvgate.gateware.frame_rx import REASON_BITS, FrameDecoder
 from dvgate.gateware.frame_tx import FrameEncoder
 from dvgate.gateware.rates import addr_bits
+from dvgate.gateware.segments import NO_RW_CHECK, fifo_lanes
 from dvgate.gateware.uart_rx import RxByte
 from dvgate.linkspec import (
     COUNT_BITS,
@@ -34,6 +35,8 @@ from dvgate.linkspec import (
 from dvgate.params import IGNORE_CYCLES_BITS, STORM_PERIOD_BITS
 
 _COUNT_MAX = (1 << COUNT_BITS) - 1
+#: Bytes of a segment's duration; its ``flags`` byte goes into the FIFO word's next lane.
+DURATION_BYTES = DURATION_BITS // 8
 
 #: Words of the link's counter memory (16 bits each, in the telemetry's order):
 #: ``accepted`` (low half, high half), then one rejection counter per :class:`Reason`.
@@ -99,8 +102,8 @@ class HostLink(wiring.Component):
         Bytes from the UART receiver.
     o : stream.Signature(8), out
         Bytes for the UART transmitter.
-    w_data, w_en, w_commit, w_rollback : out
-        The segment FIFO's write port.
+    w_data, w_en, w_next, w_commit, w_rollback : out
+        The segment FIFO's write port (a byte into its lane of a word).
     room : Signal(1), in
         The FIFO can take another segment.
     start, arm_on, stop : Signal(1), out
@@ -146,8 +149,9 @@ class HostLink(wiring.Component):
         super().__init__({
             "i": In(stream.Signature(RxByte, always_ready=True)),
             "o": Out(stream.Signature(8)),
-            "w_data": Out(link.word_bits),
-            "w_en": Out(1),
+            "w_data": Out(8 * fifo_lanes(link)),
+            "w_en": Out(fifo_lanes(link)),
+            "w_next": Out(1),
             "w_commit": Out(1),
             "w_rollback": Out(1),
             "room": In(1),
@@ -176,13 +180,18 @@ class HostLink(wiring.Component):
         self._ext_span = _span(offsets, EXTERNAL_FIELDS)
         if self._counter_span[1] != 2 * COUNTER_WORDS:
             raise ValueError("the counter fields must fill the counter memory's words")
-        self.counters = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[])
-        self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[])
+        # The walker copies the counters within 2 COUNTER_WORDS cycles of a request; the
+        # reply reads the copy only after its first ``c_first + 3`` bytes have left.
+        if self._counter_span[0] + 3 < 2 * COUNTER_WORDS + 3:
+            raise ValueError("the counters must come later in the telemetry payload")
+        self.counters = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[], attrs=NO_RW_CHECK)
+        self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[], attrs=NO_RW_CHECK)
         # The arguments of FAULT and IGNORE frames are shifted into the duration's register.
         if 8 * max(2 + STORM_BYTES, IGNORE_BYTES) > DURATION_BITS:
             raise ValueError("the FAULT and IGNORE arguments must fit the duration register")
         self.decoder = FrameDecoder(board_lengths(link), link.timeout_cyc)
-        self.encoder = FrameEncoder(link.payload_len(FrameType.TELEMETRY_REPLY), pad_to=link.reply_bytes)
+        reply_len = link.payload_len(FrameType.TELEMETRY_REPLY)
+        self.encoder = FrameEncoder(reply_len, pad_to=link.reply_bytes, frame=(FrameType.TELEMETRY_REPLY, reply_len))
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -200,8 +209,8 @@ class HostLink(wiring.Component):
         bad      = Signal()
         room     = Signal()
         dur      = Signal(DURATION_BITS)
-        last     = Signal()
-        acc      = Signal(8 * rb)
+        short    = Signal()
+        sign     = Signal()
         sub      = Signal(range(rb))
         busy     = Signal(range(link.reply_busy_cyc))
         reason   = Signal(REASON_BITS)
@@ -225,8 +234,13 @@ class HostLink(wiring.Component):
         f_set    = dur[f_base + 8: f_base + 16]
         f_storm  = dur[f_base + 16:]
         i_cycles = dur[DURATION_BITS - 8 * IGNORE_BYTES:]
-        acc_full = Cat(acc[8:], value)
-        top      = acc_full[rate_bits - 1:]
+        sign_byte, sign_bit = divmod(rate_bits - 1, 8)
+        min_byte = Signal(8)
+        with m.Switch(idx):
+            for k in range(DURATION_BYTES):
+                with m.Case(3 + k):
+                    m.d.comb += min_byte.eq((link.min_duration >> 8 * k) & 0xFF)
+        m.d.comb += self.w_data.eq(value.replicate(len(self.w_en)))
 
         # -- payload bytes, latched tentatively ------------------------------------------
         with m.If(dec.byte_stb):
@@ -236,26 +250,35 @@ class HostLink(wiring.Component):
                     m.d.sync += [self.tm_channel.eq(value), bad.eq(value >= hw.n)]
             with m.If(idx == 1):
                 m.d.sync += seq[8:].eq(value)
+            # A segment's bytes go into the FIFO word by word, each byte into its lane: the
+            # duration's four, then ``flags`` (``last`` is its bit 0) above them, then each
+            # rate's bytes (the bits above the rate register are never read).
             with m.If(is_seg):
                 with m.If(idx == 2):
-                    m.d.sync += last.eq(value[0])
+                    m.d.comb += self.w_en.eq(room << DURATION_BYTES)
                     with m.If((value & ~SEG_LAST) != 0):
                         m.d.sync += bad.eq(1)
                 with m.If((idx >= 3) & (idx <= 6)):
-                    m.d.sync += dur.eq(dur_full)
+                    m.d.comb += self.w_en.eq(room << (idx - 3)[:2])
+                    # Duration below the minimum, compared byte by byte from the lowest.
+                    m.d.sync += short.eq((value < min_byte) | ((value == min_byte) & short & (idx != 3)))
                 with m.If(idx == 6):
                     m.d.sync += sub.eq(0)
-                    m.d.comb += [self.w_data.eq(Cat(dur_full, last)), self.w_en.eq(room)]
-                    with m.If(dur_full < link.min_duration):
+                    m.d.comb += self.w_next.eq(room)
+                    with m.If((value < min_byte) | ((value == min_byte) & short)):
                         m.d.sync += bad.eq(1)
                 with m.If(idx >= 7):
-                    m.d.sync += acc.eq(acc_full)
+                    m.d.comb += self.w_en.eq(room << sub)
+                    # The bits above the rate register must only repeat its sign.
+                    with m.If(sub == sign_byte):
+                        m.d.sync += sign.eq(value[sign_bit])
+                        with m.If((value[sign_bit:] != 0) & (value[sign_bit:] != (1 << (8 - sign_bit)) - 1)):
+                            m.d.sync += bad.eq(1)
+                    with m.If((sub > sign_byte) & (value != Mux(sign, 0xFF, 0))):
+                        m.d.sync += bad.eq(1)
                     with m.If(sub == rb - 1):
                         m.d.sync += sub.eq(0)
-                        m.d.comb += [self.w_data.eq(acc_full[:rate_bits]), self.w_en.eq(room)]
-                        # The bytes above the rate register must only repeat its sign.
-                        with m.If((top != 0) & (top != (1 << len(top)) - 1)):
-                            m.d.sync += bad.eq(1)
+                        m.d.comb += self.w_next.eq(room)
                     with m.Else():
                         m.d.sync += sub.eq(sub + 1)
             with m.If((is_fault | is_ign) & (idx >= 2)):
@@ -319,21 +342,18 @@ class HostLink(wiring.Component):
             m.d.sync += self.next_seq.eq(self.next_seq + 1)
         with m.If(apply & is_tm):
             m.d.sync += busy.eq(link.reply_busy_cyc - 1)
-            m.d.comb += [
-                enc.start.eq(1),
-                enc.type.eq(FrameType.TELEMETRY_REPLY),
-                enc.length.eq(link.payload_len(FrameType.TELEMETRY_REPLY)),
-            ]
+            m.d.comb += enc.start.eq(1)
 
         # -- counters: one memory, read, added to and written back --------------------------
         # A frame's count is read on the cycle it ends and written on the next. A carry out
         # of ``accepted``'s low half is added to its high half one cycle later: the next
         # frame ends two cycles after an applied one at the earliest (its last byte comes
-        # two cycles after the applied frame's last; a timeout needs far longer).
+        # two cycles after the applied frame's last; a timeout needs far longer), so two
+        # updates never touch the same word on consecutive cycles.
         m.submodules.counters = counters = self.counters
         m.submodules.frozen = frozen = self._frozen
         c_wr   = counters.write_port()
-        c_upd  = counters.read_port(transparent_for=(c_wr,))
+        c_upd  = counters.read_port(transparent_for=())
         c_rd   = counters.read_port(transparent_for=())
         f_wr   = frozen.write_port()
         f_rd   = frozen.read_port(transparent_for=())
@@ -346,9 +366,9 @@ class HostLink(wiring.Component):
         full   = old == _COUNT_MAX
         carry  = p_upd & (p_word == ACCEPTED_WORD) & full
         write  = p_upd & ~((p_word >= reject_word(Reason(0))) & full)
-        # Words changed since the last telemetry request: their value at that instant is in
-        # ``frozen`` (copied there on the first change), the others' still in ``counters``.
+        # Words whose value at the last telemetry request is in ``frozen`` already.
         copied = Signal(COUNTER_WORDS)
+        cow    = write & ~copied.bit_select(p_word, 1)
 
         with m.If(carry):
             m.d.comb += [upd.eq(1), word.eq(ACCEPTED_WORD + 1)]
@@ -362,18 +382,37 @@ class HostLink(wiring.Component):
             c_wr.addr.eq(p_word),
             c_wr.data.eq(old + 1),
             c_wr.en.eq(write),
-            f_wr.addr.eq(p_word),
-            f_wr.data.eq(old),
-            f_wr.en.eq(write & ~copied.bit_select(p_word, 1)),
         ]
+
+        # The telemetry's copy, in ``frozen``: a word's first change after the request
+        # copies its old value there (``cow``); a walker copies the others, one a cycle,
+        # from the cycle after the request. A word the walker read as it changed (so its
+        # value read is not to be trusted) is copied by the change itself and skipped.
+        walk   = Signal(range(COUNTER_WORDS + 1), init=COUNTER_WORDS)
+        r_v    = Signal()
+        r_word = Signal.like(word)
+        issue  = Signal()
+        w_addr = Signal.like(word)
+        with m.If(r_v & cow):  # the copy port is taken: read the word again
+            m.d.comb += [issue.eq(1), w_addr.eq(r_word)]
+        with m.Elif(walk != COUNTER_WORDS):
+            m.d.comb += [issue.eq(1), w_addr.eq(walk)]
+            m.d.sync += walk.eq(walk + 1)
+        m.d.sync += [r_v.eq(issue), r_word.eq(w_addr)]
+        m.d.comb += c_rd.addr.eq(w_addr)
+        with m.If(cow):
+            m.d.comb += [f_wr.addr.eq(p_word), f_wr.data.eq(old), f_wr.en.eq(1)]
+        with m.Elif(r_v & ~copied.bit_select(r_word, 1)):
+            m.d.comb += [f_wr.addr.eq(r_word), f_wr.data.eq(c_rd.data), f_wr.en.eq(1)]
+            m.d.sync += copied.bit_select(r_word, 1).eq(1)
         with m.If(write):
             m.d.sync += copied.bit_select(p_word, 1).eq(1)
         with m.If(apply & is_tm):
-            m.d.sync += copied.eq(0)
+            m.d.sync += [copied.eq(0), walk.eq(0), r_v.eq(0)]
 
         # -- the reply -----------------------------------------------------------------------
         # Everything the reply describes is taken on the cycle the request is applied: the
-        # link's counters by the copy-on-change above, ``pos`` and ``neg`` outside (``ext``),
+        # link's counters by the copy above, ``pos`` and ``neg`` outside (``ext``),
         # every other byte into a shift register that moves on one byte per byte sent.
         c_first, c_len = self._counter_span
         x_first, x_len = self._ext_span
@@ -394,18 +433,15 @@ class HostLink(wiring.Component):
         in_counts = (idx >= c_first) & (idx < c_first + c_len)
         in_ext    = (idx >= x_first) & (idx < x_first + x_len)
         from_held = ~in_counts & ~in_ext
-        use_f     = Signal()
         n_word    = Signal(8)
         m.d.comb += [
             n_word.eq((nidx - c_first) >> 1),
-            c_rd.addr.eq(n_word),
             f_rd.addr.eq(n_word),
             self.ext_idx.eq(idx),
             self.ext_next.eq(nidx),
             self.ext_take.eq(enc.take),
         ]
-        m.d.sync += use_f.eq(copied.bit_select(n_word[:len(word)], 1))
-        counted = Mux(use_f, f_rd.data, c_rd.data)
+        counted = f_rd.data
         half = (idx - c_first)[0]
         with m.If(apply & is_tm):
             m.d.sync += held.eq(Cat(*shifted))

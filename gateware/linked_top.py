@@ -171,6 +171,7 @@ def host_to_player(host: HostLink, player: SegmentPlayer) -> list:
     return [
         player.w_data.eq(host.w_data),
         player.w_en.eq(host.w_en),
+        player.w_next.eq(host.w_next),
         player.w_commit.eq(host.w_commit),
         player.w_rollback.eq(host.w_rollback),
         host.room.eq(player.room),

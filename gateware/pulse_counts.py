@@ -10,8 +10,14 @@ from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
+from dvgate.gateware.segments import NO_RW_CHECK
+
 #: Width of the per-line pulse counters (wrap).
 PULSE_COUNT_BITS = 32
+#: Block RAM even for a memory this small (synthesis would use flip-flops); no read uses
+#: a word written on the same cycle (the adder reads the next line; the reply reads the
+#: spare words long after they are written), see ``NO_RW_CHECK``.
+TOTALS_ATTRS = {"ram_style": "block", **NO_RW_CHECK}
 
 
 class PulseCounters(wiring.Component):
@@ -23,11 +29,13 @@ class PulseCounters(wiring.Component):
 
     For the telemetry, ``snap`` marks the instant (cycle ``e``) the reply describes, for
     channel ``channel``. The two counts at ``e`` are the totals in memory at ``e`` plus
-    the pending edges and the rises at ``e``: the pending parts are kept at ``e``, and each
-    total is copied aside when the adder next visits its line (by ``e + 2 n``, before it
-    adds anything newer). The reply then reads the eight bytes (``pos``, then ``neg``,
-    little-endian) at payload offsets ``base .. base + 7``, adding the pending part byte by
-    byte as they are sent.
+    the pending edges and the rises at ``e``: the pending parts are kept at ``e``, and on
+    the adder's first visit of each of the two lines from ``e`` on (by ``e + 2 n``) it
+    copies the total, unchanged since ``e``, into a spare word of the memory instead of
+    adding to it; that line adds its pending edges one visit later (so at most ``2 n``
+    gather). The reply reads the eight bytes (``pos``, then ``neg``, little-endian) at
+    payload offsets ``base .. base + 7`` from the spare words, adding the pending parts
+    byte by byte as they are sent.
 
     Parameters
     ----------
@@ -68,21 +76,19 @@ class PulseCounters(wiring.Component):
             "take": In(1),
             "data": Out(8),
         })
-        #: Pending edges per line: at most ``n`` (see the class docstring).
-        self.pending = [Signal(n.bit_length(), name=f"pend{k}") for k in range(2 * n)]
-        self.totals = memory.Memory(shape=PULSE_COUNT_BITS, depth=2 * n, init=[])
-        self._aside = memory.Memory(shape=PULSE_COUNT_BITS, depth=2, init=[])
+        #: Pending edges per line: at most ``2 n`` (see the class docstring).
+        self.pending = [Signal((2 * n).bit_length(), name=f"pend{k}") for k in range(2 * n)]
+        #: Each line's total, then the two totals set aside for the telemetry.
+        self.totals = memory.Memory(shape=PULSE_COUNT_BITS, depth=2 * n + 2, init=[], attrs=TOTALS_ATTRS)
 
     def elaborate(self, platform) -> Module:
         m = Module()
         n, base = self._n, self._base
         slots = 2 * n
         m.submodules.totals = totals = self.totals
-        m.submodules.aside = aside = self._aside
         t_wr = totals.write_port()
         t_rd = totals.read_port(transparent_for=())
-        a_wr = aside.write_port()
-        a_rd = aside.read_port(transparent_for=())
+        a_rd = totals.read_port(transparent_for=())
 
         before = Signal(slots)
         rise   = Signal(slots)
@@ -90,9 +96,10 @@ class PulseCounters(wiring.Component):
         after  = Signal(range(slots))
         chan   = Signal(range(n))
         want   = Signal(2)
-        extra  = [Signal(n.bit_length() + 1, name=f"extra_{label}") for label in ("pos", "neg")]
+        extra  = [Signal((2 * n + 1).bit_length(), name=f"extra_{label}") for label in ("pos", "neg")]
         carry  = Signal()
-        pend   = Signal(n.bit_length())
+        pend   = Signal.like(self.pending[0])
+        hit    = Signal()
 
         m.d.sync += before.eq(self.lines)
         m.d.comb += [
@@ -101,31 +108,30 @@ class PulseCounters(wiring.Component):
         ]
         m.d.sync += slot.eq(after)
 
-        # The adder: line ``slot``'s total (read on the cycle before) plus its pending edges.
+        # The adder: line ``slot``'s total (read on the cycle before) plus its pending edges,
+        # unless the total is set aside this cycle (``hit``).
         with m.Switch(slot):
             for k in range(slots):
                 with m.Case(k):
                     m.d.comb += pend.eq(self.pending[k])
         m.d.comb += [
             t_rd.addr.eq(after),
-            t_wr.addr.eq(slot),
-            t_wr.data.eq(t_rd.data + pend),
+            t_wr.addr.eq(Mux(hit, slots + slot[0], slot)),
+            t_wr.data.eq(t_rd.data + Mux(hit, 0, pend)),
             t_wr.en.eq(1),
         ]
         for k in range(slots):
-            m.d.sync += self.pending[k].eq(Mux(slot == k, 0, self.pending[k]) + rise[k])
+            m.d.sync += self.pending[k].eq(Mux((slot == k) & ~hit, 0, self.pending[k]) + rise[k])
 
-        # The telemetry's instant: keep the pending parts, and copy each total aside on the
+        # The telemetry's instant: keep the pending parts, and set each total aside on the
         # adder's first visit of its line from ``e`` on (on ``e`` itself the memory still
         # holds the total at ``e``, and no visit in between changes it).
         channel = Signal(range(n))
         m.d.comb += channel.eq(Mux(self.snap, self.channel, chan))
         wanted = Signal(2)
         m.d.comb += wanted.eq(Mux(self.snap, 0b11, want))
-        hit = Signal()
         which = slot[0]
         m.d.comb += hit.eq(((slot >> 1) == channel) & wanted.bit_select(which, 1))
-        m.d.comb += [a_wr.addr.eq(which), a_wr.data.eq(t_rd.data), a_wr.en.eq(hit)]
         with m.If(self.snap):
             m.d.sync += chan.eq(self.channel)
             for k, label_extra in enumerate(extra):
@@ -140,7 +146,7 @@ class PulseCounters(wiring.Component):
         # The reply's bytes: the total set aside plus the pending part, byte by byte.
         offset = Signal(8)
         n_off  = Signal(8)
-        m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.next_idx - base), a_rd.addr.eq(n_off[2])]
+        m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.next_idx - base), a_rd.addr.eq(slots + n_off[2])]
         lane  = offset[:2]
         first = lane == 0
         total = a_rd.data.word_select(lane, 8)

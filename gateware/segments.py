@@ -13,6 +13,16 @@ from dvgate.linkspec import COUNT_BITS, DURATION_BITS, LinkParams, PlayState
 
 _COUNT_MAX = (1 << COUNT_BITS) - 1
 
+#: Attributes of a memory none of whose reads uses a word written on the same cycle:
+#: synthesis need not make block RAM's unspecified result of such a read defined (it
+#: would, with flip-flops and multiplexers beside the RAM).
+NO_RW_CHECK = {"no_rw_check": 1}
+
+
+def fifo_lanes(link: LinkParams) -> int:
+    """Bytes of a FIFO word: a duration with its ``last`` flag, or a rate, in whole bytes."""
+    return (link.word_bits + 7) // 8
+
 
 class Job(enum.Enum, shape=2):
     """What the shadow-rate writer is doing."""
@@ -27,9 +37,9 @@ class SegmentPlayer(wiring.Component):
 
     The FIFO holds ``fifo_depth`` segments of ``n + 1`` words each (a duration word with
     the ``last`` flag in bit 32, then one rate per channel) in a memory. The link writes a
-    frame's words as they arrive at a tentative pointer and then commits them (the frame
-    was good) or rolls them back (it was not), so nothing of a rejected frame is ever
-    played.
+    frame's words as they arrive, byte by byte into a word's lanes, at a tentative pointer
+    and then commits them (the frame was good) or rolls them back (it was not), so nothing
+    of a rejected frame is ever played.
 
     Playback goes through the emulator's shadow rate registers: a writer copies the next
     segment into the shadows ahead of time (*staging*, ``n + 2`` cycles) and a single
@@ -45,10 +55,13 @@ class SegmentPlayer(wiring.Component):
 
     Attributes
     ----------
-    w_data : Signal(word_bits), in
-        A word of the frame being received.
-    w_en : Signal(1), in
-        Write ``w_data`` at the tentative pointer and advance it.
+    w_data : Signal(8 * lanes), in
+        A word of the frame being received, or part of one (``lanes`` bytes: the word's
+        bits rounded up to whole bytes).
+    w_en : Signal(lanes), in
+        Write these byte lanes of ``w_data`` into the word at the tentative pointer.
+    w_next : Signal(1), in
+        The word is complete: advance the tentative pointer.
     w_commit : Signal(1), in
         The frame was good: its words become one queued segment.
     w_rollback : Signal(1), in
@@ -81,8 +94,9 @@ class SegmentPlayer(wiring.Component):
         self._link = link
         hw = link.hw
         super().__init__({
-            "w_data": In(link.word_bits),
-            "w_en": In(1),
+            "w_data": In(8 * fifo_lanes(link)),
+            "w_en": In(fifo_lanes(link)),
+            "w_next": In(1),
             "w_commit": In(1),
             "w_rollback": In(1),
             "room": Out(1),
@@ -100,7 +114,9 @@ class SegmentPlayer(wiring.Component):
             "played": Out(32),
             "underruns": Out(COUNT_BITS),
         })
-        self.fifo = memory.Memory(shape=link.word_bits, depth=link.fifo_depth * link.segment_words, init=[])
+        # The reader only uses words of committed segments, which the writer never touches.
+        self.fifo = memory.Memory(shape=8 * fifo_lanes(link), depth=link.fifo_depth * link.segment_words, init=[],
+                                  attrs=NO_RW_CHECK)
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -110,7 +126,7 @@ class SegmentPlayer(wiring.Component):
         rest = link.underrun == "rest"
 
         m.submodules.fifo = fifo = self.fifo
-        wr = fifo.write_port()
+        wr = fifo.write_port(granularity=8)
         rd = fifo.read_port()
 
         wr_ptr    = Signal(range(depth_words))
@@ -144,7 +160,7 @@ class SegmentPlayer(wiring.Component):
         ]
         with m.If(wr_ptr == depth_words - 1):
             m.d.comb += wr_next.eq(0)
-        with m.If(self.w_en):
+        with m.If(self.w_next):
             m.d.sync += wr_ptr.eq(wr_next)
         with m.If(self.w_commit):
             m.d.sync += wr_base.eq(wr_ptr)

@@ -174,13 +174,15 @@ def test_link_params_checked():
 
 # -- encoder and decoder gateware -----------------------------------------------------------
 
-def run_encoder(ftype: int, payload: bytes, pad_to: int | None = None) -> bytes:
-    dut = FrameEncoder(255 if pad_to is None else len(payload), pad_to)
+def run_encoder(ftype: int, payload: bytes, pad_to: int | None = None, fixed: bool = False) -> bytes:
+    max_len = 255 if pad_to is None else len(payload)
+    dut = FrameEncoder(max_len, pad_to, frame=(ftype, len(payload)) if fixed else None)
     out = bytearray()
 
     async def bench(ctx):
-        ctx.set(dut.type, ftype)
-        ctx.set(dut.length, len(payload))
+        if not fixed:  # a fixed frame ignores them
+            ctx.set(dut.type, ftype)
+            ctx.set(dut.length, len(payload))
         ctx.set(dut.start, 1)
         ctx.set(dut.o.ready, 1)
         await ctx.tick()
@@ -209,6 +211,15 @@ def run_encoder(ftype: int, payload: bytes, pad_to: int | None = None) -> bytes:
 def test_encoder_gateware_sends_what_python_encodes(ftype, payload):
     payload = bytes(payload)
     assert run_encoder(ftype, payload) == encode_frame(ftype, payload)
+
+
+@pytest.mark.parametrize("payload", [bytes(range(1, 9)), bytes((FLAG, ESC, 0x20, FLAG))])
+def test_encoder_with_a_fixed_frame_sends_the_same(payload):
+    assert run_encoder(0x85, payload, fixed=True) == encode_frame(0x85, payload)
+    assert run_encoder(0x85, payload, pad_to=1 + 2 * (len(payload) + 4), fixed=True)[:len(payload) + 5] == (
+        encode_frame(0x85, payload)[:len(payload) + 5])
+    with pytest.raises(ValueError, match=r"frame must be a type byte and a length of 1 to 8, not \(133, 9\)"):
+        FrameEncoder(8, frame=(0x85, 9))
 
 
 def test_encoder_pads_every_frame_to_the_same_length():

@@ -62,7 +62,8 @@ def run_both(link: LinkParams, events: dict[int, tuple], cycles: int):
         for cycle in range(cycles):
             row = plan.get(cycle, {})
             end = row.get("end")
-            ctx.set(player.w_en, "w" in row)
+            ctx.set(player.w_en, (1 << len(player.w_en)) - 1 if "w" in row else 0)  # every lane at once
+            ctx.set(player.w_next, "w" in row)
             ctx.set(player.w_data, row.get("w", 0))
             ctx.set(player.w_commit, end is not None and end[0] == "seg")
             ctx.set(player.w_rollback, end is not None and end[0] == "junk")
@@ -77,6 +78,7 @@ def run_both(link: LinkParams, events: dict[int, tuple], cycles: int):
                 row = plan.get(cycle, {})
                 end = row.get("end")
                 ctx.set(player.w_en, 0)
+                ctx.set(player.w_next, 0)
             rates = tuple(ctx.get(regs.rates[i]) for i in range(link.n))
             hw_trace.append((ctx.get(player.play), ctx.get(player.arm), rates, ctx.get(player.level),
                              ctx.get(player.underruns), ctx.get(player.played), ctx.get(player.room)))
