@@ -25,10 +25,15 @@ Files (little-endian):
 - stimulus: a 32-byte header (``b"DVGSTIM1"``, u32 channels, u32 flags, u64 cycles,
   u64 record count), then records of 24 bytes: u64 cycle, u32 kind, u32 reserved (0),
   i64 value. Kind ``i`` sets input port ``input_ports(params)[i]`` from that cycle on;
-  kind 255 asks for the pulse counts seen up to that cycle (a sample). Records are
+  kind 255 asks for the pulse counts seen up to that cycle (a sample); kind 254 (at most
+  one) is an edge window from its cycle to its value (exclusive, see below). Records are
   sorted by cycle; at one cycle the last record for a port wins.
 - edges: records of 16 bytes: u64 cycle, u32 line (``2 * channel + line``), u32 level.
-- result: ``b"DVGRES01"``, then u64 words: cycles, stepped and skipped cycles, the
+  With a window, only the pulses that overlap it (rise before its end, fall after its
+  start or never), each written as its rise and fall at the fall; and the run stops as
+  soon as it has passed the window's end and every such pulse has ended.
+- result: ``b"DVGRES01"``, then u64 words: cycles (with a window: the cycle the run
+  stopped at), stepped and skipped cycles, the
   :class:`~dvgate.sim.trace.Status` fields in order, per channel owed (i128 as two
   words), pend_pos, pend_neg, per line the pulse count, the sample count, and for each
   sample its cycle and the per-line counts.
@@ -50,7 +55,7 @@ import threading
 from collections.abc import Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
-from functools import cache
+from functools import cache, cached_property
 from pathlib import Path
 
 import numpy as np
@@ -69,11 +74,12 @@ __all__ = [
     "input_ports",
     "run_compiled",
     "stimulus_records",
+    "window_compiled",
     "write_stimulus",
 ]
 
 #: Bumped whenever the harness or the file formats change (part of the cache key).
-HARNESS_VERSION = 4
+HARNESS_VERSION = 5
 #: Compiler flags; -O2 measured fastest for CXXRTL output on this design (-O3 was slower).
 CXXFLAGS = ("-std=c++17", "-O2")
 
@@ -81,6 +87,8 @@ STIM_MAGIC = b"DVGSTIM1"
 RESULT_MAGIC = b"DVGRES01"
 #: Record kind of a sample (kinds below it are input ports).
 SAMPLE_KIND = 255
+#: Record kind of the edge window (cycle: its start; value: its end, exclusive).
+WINDOW_KIND = 254
 #: Stimulus header flags.
 FLAG_SUMMARY, FLAG_NO_FAST, FLAG_CHECK_FAST, FLAG_PROGRESS, FLAG_VCD = 1, 2, 4, 8, 16
 #: Exit status of the harness for a bad stimulus file (a message names the record).
@@ -385,7 +393,7 @@ static_assert(sizeof(Record) == 24, "record layout");
 struct EdgeOut { uint64_t cycle; uint32_t line; uint32_t level; };
 static_assert(sizeof(EdgeOut) == 16, "edge layout");
 
-static const uint32_t SAMPLE = 255;
+static const uint32_t SAMPLE = 255, WINDOW = 254;
 static const uint64_t RECHECK = 4;  // cycles to wait before asking again whether the design is quiet
 
 int main(int argc, char **argv) {
@@ -408,18 +416,21 @@ int main(int argc, char **argv) {
     if (flags > 31) die(3, "stimulus file %s: header: unknown flags 0x%x", argv[1], flags);
     std::vector<Record> inputs, samples;
     uint64_t last = 0;
+    bool window = false;  // keep only the pulses that overlap cycles [win_start, win_stop)
+    uint64_t win_start = 0, win_stop = 0;
     for (uint64_t r = 0; r < n_rec; r++) {
         Record rec;
         if (fread(&rec, sizeof rec, 1, in) != 1)
             die(3, "stimulus file %s: record %llu of %llu: cut short (the file ends)", argv[1],
                 (unsigned long long)r, (unsigned long long)n_rec);
-        const char *kind = rec.kind == SAMPLE ? "sample"
+        const char *kind = rec.kind == SAMPLE ? "sample" : rec.kind == WINDOW ? "window"
                          : (int)rec.kind < info.n_ports ? info.port_names[rec.kind] : "?";
 #define BAD(...) do { fprintf(stderr, "error: stimulus file %s: record %llu (cycle %llu, %s): ", argv[1], \
         (unsigned long long)r, (unsigned long long)rec.cycle, kind); fprintf(stderr, __VA_ARGS__); \
         fputc('\n', stderr); exit(3); } while (0)
-        if ((int)rec.kind >= info.n_ports && rec.kind != SAMPLE)
-            BAD("unknown kind %u (0 to %d are input ports, %u a sample)", rec.kind, info.n_ports - 1, SAMPLE);
+        if ((int)rec.kind >= info.n_ports && rec.kind != SAMPLE && rec.kind != WINDOW)
+            BAD("unknown kind %u (0 to %d are input ports, %u a sample, %u a window)", rec.kind, info.n_ports - 1,
+                SAMPLE, WINDOW);
         if (rec.reserved != 0) BAD("reserved field is %u, must be 0", rec.reserved);
         if (r > 0 && rec.cycle < last)
             BAD("comes after cycle %llu; records must be sorted by cycle", (unsigned long long)last);
@@ -430,6 +441,14 @@ int main(int argc, char **argv) {
                 BAD("a sample must be at cycle 1 to %llu", (unsigned long long)n_cyc);
             if (v != 0) BAD("value is %lld, must be 0", (long long)v);
             samples.push_back(rec);
+            continue;
+        }
+        if (rec.kind == WINDOW) {
+            if (window) BAD("a second window; at most one is allowed");
+            if (v <= (int64_t)rec.cycle) BAD("the window ends at %lld, not after its start", (long long)v);
+            window = true;
+            win_start = rec.cycle;
+            win_stop = (uint64_t)v;
             continue;
         }
         if (rec.cycle >= n_cyc)
@@ -466,7 +485,22 @@ int main(int argc, char **argv) {
     std::vector<EdgeOut> ebuf;
     ebuf.reserve(1 << 16);
     std::vector<uint64_t> counts(2 * n_ch, 0), sample_rows;
+    std::vector<uint64_t> rose(2 * n_ch, 0);  // with a window: the rise of each line's current pulse
     uint32_t prev = 0;  // logical level of every line at the last cycle seen, bit 2 * channel + line
+    auto put_edge = [&](uint64_t cycle, uint32_t line, uint32_t level) {
+        ebuf.push_back(EdgeOut{cycle, line, level});
+        if (ebuf.size() == ebuf.capacity()) {
+            fwrite(ebuf.data(), sizeof(EdgeOut), ebuf.size(), edges_out);
+            ebuf.clear();
+        }
+    };
+    // Lines high with a pulse that rose before the window's end (its fall is still to come).
+    auto open_in_window = [&]() {
+        uint32_t open = 0;
+        for (int line = 0; line < 2 * n_ch; line++)
+            if (((prev >> line) & 1u) && rose[line] < win_stop) open |= 1u << line;
+        return open;
+    };
     size_t ri = 0, si = 0;
     uint64_t k = 0, stepped = 0, skipped = 0, next_check = 0;
     const uint64_t report_every = n_cyc / 200 + 1;
@@ -480,12 +514,16 @@ int main(int argc, char **argv) {
             diff &= diff - 1;
             uint32_t level = (now >> line) & 1u;
             if (level) counts[line]++;
-            if (!summary) {
-                ebuf.push_back(EdgeOut{cycle, (uint32_t)line, level});
-                if (ebuf.size() == ebuf.capacity()) {
-                    fwrite(ebuf.data(), sizeof(EdgeOut), ebuf.size(), edges_out);
-                    ebuf.clear();
+            if (window) {
+                // A pulse is kept when it ends: then it is known whether it overlaps the window.
+                if (level) {
+                    rose[line] = cycle;
+                } else if (rose[line] < win_stop && cycle > win_start) {
+                    put_edge(rose[line], (uint32_t)line, 1u);
+                    put_edge(cycle, (uint32_t)line, 0u);
                 }
+            } else if (!summary) {
+                put_edge(cycle, (uint32_t)line, level);
             }
         }
         prev = now;
@@ -528,7 +566,12 @@ int main(int argc, char **argv) {
     };
 
     std::vector<uint32_t> before, shortcut, slow;
+    bool stopped = false;  // a window run that has every pulse it keeps
     while (k < n_cyc) {
+        if (window && k >= win_stop && !open_in_window()) {
+            stopped = true;
+            break;
+        }
         if (progress && k >= next_report) {
             fprintf(stderr, "progress %llu\n", (unsigned long long)k);
             fflush(stderr);
@@ -575,19 +618,29 @@ int main(int argc, char **argv) {
         one_cycle();
     }
     // Cycle N: no clock edge, only the outputs and the status.
-    if (vcd_on) {
-        design_step_clock(false);
-        vcd_sample(n_cyc * period);
-        fclose(vcd_file);
-    } else {
+    if (stopped) {
         design_settle();
+        if (vcd_on) fclose(vcd_file);
+    } else {
+        if (vcd_on) {
+            design_step_clock(false);
+            vcd_sample(n_cyc * period);
+            fclose(vcd_file);
+        } else {
+            design_settle();
+        }
+        observe(n_cyc);
+        take_samples(n_cyc);
     }
-    observe(n_cyc);
-    take_samples(n_cyc);
+    if (window) {  // pulses still active at the end of the run: no fall
+        uint32_t open = open_in_window();
+        for (int line = 0; line < 2 * n_ch; line++)
+            if ((open >> line) & 1u) put_edge(rose[line], (uint32_t)line, 1u);
+    }
     if (!ebuf.empty()) fwrite(ebuf.data(), sizeof(EdgeOut), ebuf.size(), edges_out);
     if (fclose(edges_out) != 0) die(2, "cannot write %s", argv[2]);
 
-    std::vector<uint64_t> words = {n_cyc, stepped, skipped};
+    std::vector<uint64_t> words = {stopped ? k : n_cyc, stepped, skipped};
     std::vector<uint64_t> st(info.n_status);
     design_status(st.data());
     words.insert(words.end(), st.begin(), st.end());
@@ -933,11 +986,14 @@ def _build(params: HardwareParams) -> _Build:
 # Running
 
 
-def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[int] = ()) -> np.ndarray:
+def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[int] = (),
+                     window: tuple[int, int] | None = None) -> np.ndarray:
     """The stimulus as records ``(cycle, kind, value)``: the testbench's port plan, the pin edges, samples.
 
     Kind ``i`` sets input port ``input_ports(params)[i]`` from that cycle on; kind
-    :data:`SAMPLE_KIND` asks for the pulse counts up to that cycle. Sorted by cycle (stable).
+    :data:`SAMPLE_KIND` asks for the pulse counts up to that cycle; kind
+    :data:`WINDOW_KIND` (from ``window = (start, stop)``) keeps only the edges of pulses
+    that overlap cycles ``start .. stop - 1``. Sorted by cycle (stable).
     """
     from dvgate.sim.testbench import input_plan
 
@@ -950,26 +1006,28 @@ def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[i
     edges = edges[edges < stim.cycles]
     idle = 0 if params.edge_rising else 1
     levels = idle ^ ((np.arange(len(edges)) + 1) & 1)
-    sample_cycles = np.asarray(sorted(samples), dtype=np.int64)
-    recs = np.zeros(len(planned) + len(edges) + len(sample_cycles), dtype=_RECORD)
-    recs["cycle"] = np.concatenate([planned[:, 0], edges, sample_cycles])
+    sample_cycles = np.sort(np.asarray(samples, dtype=np.int64).reshape(-1))
+    extra = np.array([window], dtype=np.int64) if window is not None else np.zeros((0, 2), dtype=np.int64)
+    recs = np.zeros(len(planned) + len(edges) + len(sample_cycles) + len(extra), dtype=_RECORD)
+    recs["cycle"] = np.concatenate([planned[:, 0], edges, sample_cycles, extra[:, 0]])
     recs["kind"] = np.concatenate([planned[:, 1], np.full(len(edges), kinds["strobe"], np.int64),
-                                   np.full(len(sample_cycles), SAMPLE_KIND, np.int64)])
-    recs["value"] = np.concatenate([planned[:, 2], levels, np.zeros(len(sample_cycles), np.int64)])
+                                   np.full(len(sample_cycles), SAMPLE_KIND, np.int64),
+                                   np.full(len(extra), WINDOW_KIND, np.int64)])
+    recs["value"] = np.concatenate([planned[:, 2], levels, np.zeros(len(sample_cycles), np.int64), extra[:, 1]])
     # Stable: the plan's value for the pin at cycle 0 comes before an edge at cycle 0.
     return recs[np.argsort(recs["cycle"], kind="stable")]
 
 
 def write_stimulus(path: str | Path, params: HardwareParams, stim: Stimulus, *, samples: Sequence[int] = (),
-                   flags: int = 0) -> None:
+                   window: tuple[int, int] | None = None, flags: int = 0) -> None:
     """Write the harness's stimulus file for ``stim`` (see the module's notes for the format)."""
-    recs = stimulus_records(params, stim, samples)
+    recs = stimulus_records(params, stim, samples, window)
     with open(path, "wb") as handle:
         handle.write(_STIM_HEADER.pack(STIM_MAGIC, params.n, flags, stim.cycles, len(recs)))
         recs.tofile(handle)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class CountRun:
     """A run that kept pulse counts instead of edges (``count_compiled``).
 
@@ -979,21 +1037,32 @@ class CountRun:
         Status and books at cycle N; ``edges`` is empty.
     counts : tuple of (int, int)
         Pulses started on each channel's positive and negative line, cycles 1..N.
-    samples : dict
-        ``{cycle: ((pos, neg), ...)}``: per channel, pulses started in cycles 1..cycle.
+    sample_cycles : ndarray of int64, shape (k,)
+        The sample cycles asked for, sorted (a cycle asked for twice appears twice).
+    sample_counts : ndarray of int64, shape (k, channels, 2)
+        Per sample and channel, pulses started on the positive and negative line in
+        cycles 1..cycle.
     stepped, skipped : int
         Cycles evaluated one by one, and cycles the fast path jumped over.
     """
 
     result: RunResult
     counts: tuple[tuple[int, int], ...]
-    samples: dict[int, tuple[tuple[int, int], ...]]
+    sample_cycles: np.ndarray
+    sample_counts: np.ndarray
     stepped: int
     skipped: int
 
+    @cached_property
+    def samples(self) -> dict[int, tuple[tuple[int, int], ...]]:
+        """``{cycle: ((pos, neg), ...)}``: the samples as plain numbers (small runs; arrays for long ones)."""
+        return {int(c): tuple((int(p), int(q)) for p, q in row)
+                for c, row in zip(self.sample_cycles, self.sample_counts, strict=True)}
 
-def _run(params: HardwareParams, stim: Stimulus, *, samples: Sequence[int] = (), summary: bool, fast: bool,
-         check_fast: bool, progress: bool | None, vcd_path: str | Path | None) -> tuple[RunResult, CountRun]:
+
+def _run(params: HardwareParams, stim: Stimulus, *, samples: Sequence[int] = (), window: tuple[int, int] | None = None,
+         summary: bool, fast: bool, check_fast: bool, progress: bool | None,
+         vcd_path: str | Path | None) -> tuple[RunResult, CountRun]:
     made = _build(params)
     if progress is None:
         progress = stim.cycles >= PROGRESS_MIN_CYCLES and sys.stderr.isatty()
@@ -1001,7 +1070,7 @@ def _run(params: HardwareParams, stim: Stimulus, *, samples: Sequence[int] = (),
              | (FLAG_PROGRESS if progress else 0) | (FLAG_VCD if vcd_path is not None else 0))
     with tempfile.TemporaryDirectory(prefix="dvgate-run-") as tmp:
         stim_path, edges_path, result_path = (Path(tmp) / name for name in ("stim.bin", "edges.bin", "result.bin"))
-        write_stimulus(stim_path, params, stim, samples=samples, flags=flags)
+        write_stimulus(stim_path, params, stim, samples=samples, window=window, flags=flags)
         command = [str(made.binary), str(stim_path), str(edges_path), str(result_path)]
         if vcd_path is not None:
             command.append(str(vcd_path))
@@ -1068,8 +1137,8 @@ def _read_results(params: HardwareParams, stim: Stimulus, edges_path: Path, resu
     at += 2 * n
     n_samples = int(words[at])
     at += 1
-    rows = words[at:at + n_samples * (1 + 2 * n)].reshape(n_samples, 1 + 2 * n) if n_samples else np.zeros((0, 1))
-    sampled = {int(row[0]): tuple((int(row[1 + 2 * i]), int(row[2 + 2 * i])) for i in range(n)) for row in rows}
+    rows = words[at:at + n_samples * (1 + 2 * n)].astype(np.int64).reshape(n_samples, 1 + 2 * n)
+    sample_cycles, sample_counts = rows[:, 0].copy(), rows[:, 1:].reshape(n_samples, n, 2).copy()
 
     edges: tuple[Edge, ...] = ()
     if not summary:
@@ -1084,7 +1153,8 @@ def _read_results(params: HardwareParams, stim: Stimulus, edges_path: Path, resu
             found += [Edge(channel, which, r, f) for r, f in zip(rises, falls, strict=True)]
         edges = tuple(found)
     result = RunResult(cycles=cycles, edges=edges, status=status, channels=tuple(books))
-    return result, CountRun(result=result, counts=counts, samples=sampled, stepped=stepped, skipped=skipped)
+    return result, CountRun(result=result, counts=counts, sample_cycles=sample_cycles, sample_counts=sample_counts,
+                            stepped=stepped, skipped=skipped)
 
 
 def run_compiled(params: HardwareParams, stim: Stimulus, *, vcd_path: str | Path | None = None,
@@ -1132,4 +1202,30 @@ def count_compiled(params: HardwareParams, stim: Stimulus, samples: Sequence[int
     _, counted = _run(params, stim, samples=samples, summary=True, fast=fast, check_fast=check_fast,
                       progress=progress, vcd_path=None)
     return counted
+
+
+def window_compiled(params: HardwareParams, stim: Stimulus, start: int, stop: int, *, fast: bool = True,
+                    check_fast: bool = False, progress: bool | None = None) -> tuple[Edge, ...]:
+    """The pulses of :func:`run_compiled` that overlap cycles ``start .. stop - 1``, and no others.
+
+    The harness keeps only those pulses and stops as soon as it has passed ``stop`` and
+    each of them has ended, so a window early in a long run costs only the run up to it,
+    and nothing per pulse outside the window is held anywhere.
+
+    Returns
+    -------
+    tuple of Edge
+        Exactly ``tuple(e for e in run_compiled(params, stim).edges if e.rise < stop and
+        (e.fall is None or e.fall > start))``, in the same order.
+
+    Raises
+    ------
+    ValueError
+        If ``stop <= start`` or ``start < 0``.
+    """
+    if start < 0 or stop <= start:
+        raise ValueError(f"edge window {start}..{stop}: the end must come after the start, which must be >= 0")
+    result, _ = _run(params, stim, window=(start, stop), summary=False, fast=fast, check_fast=check_fast,
+                     progress=progress, vcd_path=None)
+    return result.edges
 

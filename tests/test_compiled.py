@@ -180,6 +180,51 @@ def test_counts_and_samples_match_the_edges():
         assert counted.samples[cycle] == want
 
 
+def test_sample_arrays_hold_the_samples_in_order():
+    stim = Stimulus(cycles=400, strobe_edges=periodic_strobe_edges(400, 61, 3, first=5))
+    counted = compiled.count_compiled(BINARY, stim, [300, 7, 120])
+    assert counted.sample_cycles.tolist() == [7, 120, 300]
+    assert counted.sample_counts.shape == (3, BINARY.n, 2)
+    assert counted.sample_counts[-1].sum() > 0  # the run pulses, so the check below means something
+    assert {c: tuple(map(tuple, row.tolist())) for c, row in zip([7, 120, 300], counted.sample_counts,
+                                                                  strict=True)} == counted.samples
+
+
+@pytest.mark.parametrize("name", ["burst", "binary", "ternary"])
+def test_edge_window_keeps_exactly_the_pulses_that_overlap_it(name):
+    params = PARAMS[name]
+    rng = random.Random(f"edge window {name}")  # a fixed seed: the same runs every time
+    for case in range(6):
+        stim = random_stimulus(params, rng, rng.randint(300, 3000))
+        full = compiled.run_compiled(params, stim)
+        assert full.edges, "the stimulus makes no pulses"
+        pick = full.edges[rng.randrange(len(full.edges))]
+        windows = [(0, stim.cycles + 1), (stim.cycles, stim.cycles + 50), (pick.rise, pick.rise + 1),
+                   (pick.rise - 1, pick.rise), (pick.fall or pick.rise, (pick.fall or pick.rise) + 1)]
+        windows += [(a, a + rng.randint(1, 300)) for a in (rng.randint(0, stim.cycles) for _ in range(4))]
+        for start, stop in windows:
+            if start < 0:
+                continue
+            want = tuple(e for e in full.edges if e.rise < stop and (e.fall is None or e.fall > start))
+            got = compiled.window_compiled(params, stim, start, stop, check_fast=case % 2 == 0)
+            assert got == want, f"case {case}, window {start}..{stop}"
+
+
+def test_edge_window_run_stops_after_the_window():
+    # A window early in a long run costs only the run up to it (plus the last pulse's end).
+    stim = Stimulus(cycles=2_000_000, strobe_edges=periodic_strobe_edges(2_000_000, 301, 3, first=3))
+    full = compiled.run_compiled(BINARY, stim)
+    start, stop = 1000, 1400
+    result, _ = compiled._run(BINARY, stim, window=(start, stop), summary=False, fast=True, check_fast=False,
+                              progress=False, vcd_path=None)
+    want = tuple(e for e in full.edges if e.rise < stop and (e.fall is None or e.fall > start))
+    assert want and result.edges == want
+    last_fall = max(e.fall for e in want)
+    assert stop <= result.cycles <= max(stop, last_fall) + 1
+    with pytest.raises(ValueError, match="edge window 5..5"):
+        compiled.window_compiled(BINARY, stim, 5, 5)
+
+
 def test_progress_bar_does_not_change_the_result():
     stim = Stimulus(cycles=200_000, strobe_edges=periodic_strobe_edges(200_000, 301, 3, first=3))
     assert compiled.run_compiled(BINARY, stim, progress=True) == run_model(BINARY, stim)
@@ -267,6 +312,8 @@ def _stim_file(path: Path, records: list[tuple[int, int, int]], *, channels: int
     ([(0, 1, 1), (5, 1, 2)], {}, r"record 1 \(cycle 5, arm\): value 2 does not fit"),
     ([(0, 1, 1), (100, 0, 1)], {}, r"record 1 \(cycle 100, strobe\): past the run"),
     ([(0, 255, 0)], {}, r"record 0 \(cycle 0, sample\): a sample must be at cycle 1 to 100"),
+    ([(0, 1, 1), (5, 254, 5)], {}, r"record 1 \(cycle 5, window\): the window ends at 5, not after its start"),
+    ([(0, 254, 9), (5, 254, 20)], {}, r"record 1 \(cycle 5, window\): a second window"),
     ([(0, 1, 1)], {"header_records": 0}, "more bytes after record 0"),
 ])
 def test_malformed_stimulus_names_the_record(tmp_path, records, extra, message):
