@@ -6,10 +6,21 @@ it; :func:`~dvgate.sim.program.make_program` turns it into a rate program; a
 cycle-accurate engine simulates the emulator on the computer's periodic strobe; the
 host model reads the counters once per computation cycle. :func:`run_pipeline`
 returns everything in a :class:`RunOutcome`; :mod:`dvgate.report` writes it out.
+
+Memory: with the compiled engine the pipeline takes the **counting path**: the harness
+counts the pulses at every counter read and strobe taken
+(:func:`~dvgate.sim.compiled.count_compiled`), and a second run keeps the edges of the
+timeline's window only (:func:`~dvgate.sim.compiled.window_compiled`), so nothing per
+pulse is held and memory grows with the run's length (strobes, reads, rate changes),
+not with its pulses. Every other engine (the reference model, Amaranth, Icarus,
+Verilator, any callable) takes the **edge path**: it returns every edge and the host
+side counts them, which needs memory for every pulse. Both paths give the same counts,
+host view, errors, books and timeline.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import inspect
 import time
 from collections.abc import Callable, Iterator
@@ -34,7 +45,7 @@ from dvgate.sim.host import (
     read_cycles,
     rise_cycles,
 )
-from dvgate.sim.model import run_model, strobe_cycles
+from dvgate.sim.model import armed_intervals, run_model, strobe_cycles
 from dvgate.sim.profile import Profile, read_csv
 from dvgate.sim.program import Program, make_program, program_settings
 from dvgate.sim.scenarios import load_scenario
@@ -164,8 +175,9 @@ class RunOutcome:
     plan : RunPlan
         Stimulus and placement.
     result : RunResult
-        The engine's status and books at the end; its edges are dropped after the host
-        side has counted them (``timeline`` keeps the ones the report shows).
+        The engine's status and books at the end, without edges: the edge path drops them
+        once counted, the counting path never has them (``timeline`` keeps the ones the
+        report shows).
     samples : PulseCounts
         Counts per line at every counter read and every strobe taken.
     host : HostView
@@ -180,9 +192,9 @@ class RunOutcome:
     timeline : Timeline
         Edges around one strobe, for the timeline plot.
     engine : str
-        Which engine ran, and why.
+        Which engine ran, why, and which path (counting or edges) the pipeline took.
     seconds : float
-        Wall-clock time of the simulation.
+        Wall-clock time of the simulation (on the counting path, both runs).
     books : tuple of str
         Conservation problems (empty when the books balance).
     """
@@ -232,8 +244,8 @@ class Timeline:
     strobe_width: int
 
 
-def _timeline(result: RunResult, plan: RunPlan, samples: PulseCounts, config: Config) -> Timeline:
-    """The strobe whose answer has the most pulses (the busiest), with its edges."""
+def _timeline_window(plan: RunPlan, samples: PulseCounts, config: Config) -> Timeline:
+    """The strobe whose answer has the most pulses (the busiest) and the window around it, without edges."""
     hw = config.hw
     takes = plan.takes
     width = config.strobe_width_cyc
@@ -248,8 +260,12 @@ def _timeline(result: RunResult, plan: RunPlan, samples: PulseCounts, config: Co
     longest = max(int(answer[pick]), 1) * hw.pulse_period_cyc
     start = max(0, edge - max(4, longest // 8))
     stop = take + hw.latency_cyc + longest + max(4, longest // 8)
-    edges = tuple(e for e in result.edges if e.rise < stop and (e.fall is None or e.fall > start))
-    return Timeline(edge, take, start, stop, edges, width)
+    return Timeline(edge, take, start, stop, (), width)
+
+
+def _in_window(edges: tuple[Edge, ...], start: int, stop: int) -> tuple[Edge, ...]:
+    """The pulses that overlap cycles ``start .. stop - 1``."""
+    return tuple(e for e in edges if e.rise < stop and (e.fall is None or e.fall > start))
 
 
 def _draws_progress(engine: Engine) -> bool:
@@ -265,6 +281,21 @@ def _call_engine(engine: Engine, params: HardwareParams, stim: Stimulus, show: b
     if _draws_progress(engine):
         return engine(params, stim, progress=show)
     return engine(params, stim)
+
+
+def _counts_in_harness(engine: Engine) -> bool:
+    """True for the compiled engine, whose harness counts pulses and keeps edges in a window only."""
+    try:
+        from dvgate.sim.compiled import run_compiled
+    except ImportError:
+        return False
+    return engine is run_compiled
+
+
+def _sample_cycles(plan: RunPlan, timing: HostTiming) -> np.ndarray:
+    """Where the host side needs counts: every counter read and every strobe taken."""
+    reads = read_cycles(timing, plan.origin, plan.stop)
+    return np.unique(np.concatenate((reads, plan.takes[plan.takes <= plan.stop])))
 
 
 class _Stages:
@@ -322,8 +353,13 @@ def run_pipeline(source: str | Path, config: Config, *, engine: Engine | None = 
         The emulator, with its ``[host]``, ``[sensor]`` and ``[program]`` sections.
     engine : callable, optional
         ``engine(params, stim) -> RunResult``; :func:`default_engine` when not given.
+        The compiled engine (:func:`dvgate.sim.compiled.run_compiled`) takes the counting
+        path: its harness counts the pulses at the reads and strobes, and a second run
+        up to the timeline's window keeps that window's edges only, so memory does not
+        grow with the number of pulses. Any other engine (the reference model, Amaranth,
+        Icarus, Verilator) takes the edge path: every edge is returned and counted here.
     engine_name : str, optional
-        How the report names the engine.
+        How the report names the engine; the path taken is added to it.
     progress : bool
         Show a progress display on the terminal.
 
@@ -337,7 +373,10 @@ def run_pipeline(source: str | Path, config: Config, *, engine: Engine | None = 
         engine, default_name = default_engine()
         engine_name = engine_name or default_name
     engine_name = engine_name or getattr(engine, "__name__", "engine")
-    stages = _Stages(progress, 5)
+    counting = _counts_in_harness(engine)
+    engine_name += ("; counting path: pulses counted in the harness, edges kept only around the busiest strobe"
+                    if counting else "; edge path: every pulse edge held in memory")
+    stages = _Stages(progress, 6 if counting else 5)
     # Check every setting before any long work.
     timing = host_timing(config)
     sensor = sensor_model(config)
@@ -354,28 +393,80 @@ def run_pipeline(source: str | Path, config: Config, *, engine: Engine | None = 
         plan = plan_run(program, config, read_every=timing.cycle_cyc)
         stages.done()
         stages.step(f"simulating {plan.stop:,} cycles")
-        began = time.perf_counter()
-        pausing = stages.paused() if _draws_progress(engine) else nullcontext()
-        with pausing:
-            result = _call_engine(engine, config.hw, plan.stimulus, progress)
-        seconds = time.perf_counter() - began
-        stages.done()
-        stages.step("host view")
-        outcome = _host_side(source, config, truth, profile, effect, program, plan, result, timing, engine_name,
-                             seconds)
+        if counting:
+            outcome = _counting_path(source, config, truth, profile, effect, program, plan, timing, engine_name,
+                                     stages, progress)
+        else:
+            began = time.perf_counter()
+            pausing = stages.paused() if _draws_progress(engine) else nullcontext()
+            with pausing:
+                result = _call_engine(engine, config.hw, plan.stimulus, progress)
+            seconds = time.perf_counter() - began
+            stages.done()
+            stages.step("host view")
+            samples = pulse_counts(rise_cycles(result, config.hw.n), _sample_cycles(plan, timing), config.hw.n)
+            books = tuple(conservation_errors(config.hw, plan.stimulus, result))
+            timeline = _timeline_window(plan, samples, config)
+            timeline = dataclasses.replace(timeline, edges=_in_window(result.edges, timeline.start, timeline.stop))
+            # The edges have served (counts, books, timeline); a long run's edges are large.
+            light = RunResult(result.cycles, (), result.status, result.channels)
+            outcome = _host_side(source, config, truth, profile, effect, program, plan, light, samples, books,
+                                 timeline, timing, engine_name, seconds)
         stages.done()
     return outcome
 
 
+def _counting_path(source: str | Path, config: Config, truth: Profile, profile: Profile, effect: SensorEffect,
+                   program: Program, plan: RunPlan, timing: HostTiming, engine_name: str, stages: _Stages,
+                   progress: bool) -> RunOutcome:
+    """The compiled engine's run without edges: counts at the samples, then the timeline's window alone.
+
+    The window is the busiest strobe's, found from the counts, so it is known only after
+    the first run; the second run goes over the stimulus up to the window's end and keeps
+    only the pulses that overlap it. (Choosing the window before the run would need the
+    counts the run produces; keeping candidate windows during one run would repeat the
+    choice of :func:`_timeline_window` in the harness.)
+    """
+    from dvgate.sim.compiled import count_compiled, window_compiled
+
+    hw, stim = config.hw, plan.stimulus
+    sample_at = _sample_cycles(plan, timing)
+    # The books count the pulses since the last arming: the count at the arming cycle is
+    # subtracted from the totals (the edge path keeps the edges that rise after it).
+    armed = armed_intervals(stim)
+    begin = armed[-1][0] if armed else 0
+    at_begin = 1 <= begin <= stim.cycles  # else nothing can have risen by then
+    asked = np.union1d(sample_at, np.array([begin], dtype=np.int64)) if at_begin else sample_at
+    began = time.perf_counter()
+    with stages.paused():
+        counted = count_compiled(hw, stim, asked, progress=progress)
+    seconds = time.perf_counter() - began
+    stages.done()
+    keep = np.isin(counted.sample_cycles, sample_at)
+    samples = PulseCounts(counted.sample_cycles[keep], counted.sample_counts[keep])
+    since = np.array(counted.counts, dtype=np.int64)
+    if at_begin:
+        since = since - counted.sample_counts[np.searchsorted(counted.sample_cycles, begin)]
+    books = tuple(conservation_errors(hw, stim, counted.result, counts=[(int(p), int(q)) for p, q in since]))
+    timeline = _timeline_window(plan, samples, config)
+    if len(plan.takes):
+        stages.step(f"timeline: simulating up to cycle {timeline.stop:,}")
+        began = time.perf_counter()
+        with stages.paused():
+            edges = window_compiled(hw, stim, timeline.start, timeline.stop, progress=progress)
+        seconds += time.perf_counter() - began
+        timeline = dataclasses.replace(timeline, edges=edges)
+    stages.done()
+    stages.step("host view")
+    return _host_side(source, config, truth, profile, effect, program, plan, counted.result, samples, books,
+                      timeline, timing, engine_name, seconds)
+
+
 def _host_side(source: str | Path, config: Config, truth: Profile, profile: Profile, effect: SensorEffect,
-               program: Program, plan: RunPlan, result: RunResult, timing: HostTiming, engine_name: str,
-               seconds: float) -> RunOutcome:
-    """Counts, the host's view and the errors, from a run's result."""
-    n = config.hw.n
+               program: Program, plan: RunPlan, result: RunResult, samples: PulseCounts, books: tuple[str, ...],
+               timeline: Timeline, timing: HostTiming, engine_name: str, seconds: float) -> RunOutcome:
+    """The host's view and the errors, from the counts at the sample cycles (either path)."""
     reads = read_cycles(timing, plan.origin, plan.stop)
-    sample_at = np.unique(np.concatenate((reads, plan.takes[plan.takes <= plan.stop])))
-    rises = rise_cycles(result, n)
-    samples = pulse_counts(rises, sample_at, n)
     view = host_view(samples, config, timing, start=plan.origin, stop=plan.stop)
     # The reference for each read: the program's integral up to the last strobe taken
     # before it (what the emulator could have reported by then).
@@ -387,11 +478,7 @@ def _host_side(source: str | Path, config: Config, truth: Profile, profile: Prof
     commanded = program.velocity(ticks)
     times = truth.start + ticks / config.clock_hz
     true_velocity = truth.integral(np.minimum(times, truth.stop))
-    books = tuple(conservation_errors(config.hw, plan.stimulus, result))
-    timeline = _timeline(result, plan, samples, config)
-    # The edges have served (counts, books, timeline); a long run's edges are large.
-    light = RunResult(result.cycles, (), result.status, result.channels)
-    return RunOutcome(config, str(source), truth, profile, effect, program, plan, light, samples, view, error,
+    return RunOutcome(config, str(source), truth, profile, effect, program, plan, result, samples, view, error,
                       commanded, true_velocity, timeline, engine_name, seconds, books)
 
 
