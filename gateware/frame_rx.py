@@ -90,7 +90,6 @@ class FrameDecoder(wiring.Component):
         state    = Signal(DecodeState)
         esc      = Signal()
         quiet    = Signal(range(self._timeout + 1))
-        length   = Signal(8)
         count    = Signal(8)
         hi_ok    = Signal()
         expected = Signal(8)
@@ -156,7 +155,7 @@ class FrameDecoder(wiring.Component):
                     with m.Case(DecodeState.LEN):
                         with m.If(value == expected):
                             m.d.comb += check.valid.eq(1)
-                            m.d.sync += [length.eq(value), count.eq(0), state.eq(DecodeState.PAYLOAD)]
+                            m.d.sync += [count.eq(0), state.eq(DecodeState.PAYLOAD)]
                         with m.Else():
                             m.d.sync += [*end(False, Reason.FORMAT), state.eq(DecodeState.SKIP)]
                     with m.Case(DecodeState.PAYLOAD):
@@ -167,7 +166,8 @@ class FrameDecoder(wiring.Component):
                             self.byte_stb.eq(1),
                             count.eq(count + 1),
                         ]
-                        with m.If(count == length - 1):
+                        # The length was checked against the type's: ``expected`` is it.
+                        with m.If(count == expected - 1):
                             m.d.sync += state.eq(DecodeState.CRC1)
                     with m.Case(DecodeState.CRC1):
                         m.d.sync += [hi_ok.eq(value == check.crc[8:16]), state.eq(DecodeState.CRC2)]

@@ -42,6 +42,8 @@ DURATION_BYTES = DURATION_BITS // 8
 #: ``accepted`` (low half, high half), then one rejection counter per :class:`Reason`.
 ACCEPTED_WORD = 0
 COUNTER_WORDS = 2 + len(Reason)
+#: Word of the telemetry's copy that holds ``next_seq`` (after the counters' copies).
+NEXT_SEQ_WORD = COUNTER_WORDS
 #: The telemetry fields the link keeps in its counter memory, in payload order.
 COUNTER_FIELDS = ("accepted", *(f"rej_{r.name.lower()}" for r in Reason))
 #: The telemetry fields the link reads from outside while it sends a reply (``ext``).
@@ -185,7 +187,7 @@ class HostLink(wiring.Component):
         if self._counter_span[0] + 3 < 2 * COUNTER_WORDS + 3:
             raise ValueError("the counters must come later in the telemetry payload")
         self.counters = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[], attrs=NO_RW_CHECK)
-        self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[], attrs=NO_RW_CHECK)
+        self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS + 1, init=[], attrs=NO_RW_CHECK)
         # The arguments of FAULT and IGNORE frames are shifted into the duration's register.
         if 8 * max(2 + STORM_BYTES, IGNORE_BYTES) > DURATION_BITS:
             raise ValueError("the FAULT and IGNORE arguments must fit the duration register")
@@ -205,7 +207,7 @@ class HostLink(wiring.Component):
         wiring.connect(m, wiring.flipped(self.i), dec.i)
         wiring.connect(m, enc.o, wiring.flipped(self.o))
 
-        seq      = Signal(SEQ_BITS)
+        seq_ok   = Signal()
         bad      = Signal()
         room     = Signal()
         dur      = Signal(DURATION_BITS)
@@ -245,11 +247,12 @@ class HostLink(wiring.Component):
         # -- payload bytes, latched tentatively ------------------------------------------
         with m.If(dec.byte_stb):
             with m.If(idx == 0):
-                m.d.sync += [seq[:8].eq(value), bad.eq(0), room.eq(self.room)]
+                m.d.sync += [seq_ok.eq(value == self.next_seq[:8]), bad.eq(0), room.eq(self.room)]
                 with m.If(is_tm):
                     m.d.sync += [self.tm_channel.eq(value), bad.eq(value >= hw.n)]
             with m.If(idx == 1):
-                m.d.sync += seq[8:].eq(value)
+                # Compared as it comes: ``next_seq`` only changes when a frame is applied.
+                m.d.sync += seq_ok.eq(seq_ok & (value == self.next_seq[8:]))
             # A segment's bytes go into the FIFO word by word, each byte into its lane: the
             # duration's four, then ``flags`` (``last`` is its bit 0) above them, then each
             # rate's bytes (the bits above the rate register are never read).
@@ -308,7 +311,7 @@ class HostLink(wiring.Component):
                 m.d.comb += [reason.eq(dec.end_reason), count.eq(1)]
             with m.Elif(bad):
                 m.d.comb += [reason.eq(Reason.FORMAT), count.eq(1)]
-            with m.Elif(is_seq & (seq != self.next_seq)):
+            with m.Elif(is_seq & ~seq_ok):
                 m.d.comb += [reason.eq(Reason.SEQUENCE), count.eq(1)]
             with m.Elif(is_seg & ~room):
                 m.d.comb += [reason.eq(Reason.FULL), count.eq(1)]
@@ -400,7 +403,11 @@ class HostLink(wiring.Component):
             m.d.sync += walk.eq(walk + 1)
         m.d.sync += [r_v.eq(issue), r_word.eq(w_addr)]
         m.d.comb += c_rd.addr.eq(w_addr)
-        with m.If(cow):
+        with m.If(apply & is_tm):
+            # ``next_seq`` at the request (no count is written on this cycle: the frame
+            # before ended two cycles ago at the latest).
+            m.d.comb += [f_wr.addr.eq(NEXT_SEQ_WORD), f_wr.data.eq(self.next_seq), f_wr.en.eq(1)]
+        with m.Elif(cow):
             m.d.comb += [f_wr.addr.eq(p_word), f_wr.data.eq(old), f_wr.en.eq(1)]
         with m.Elif(r_v & ~copied.bit_select(r_word, 1)):
             m.d.comb += [f_wr.addr.eq(r_word), f_wr.data.eq(c_rd.data), f_wr.en.eq(1)]
@@ -412,16 +419,18 @@ class HostLink(wiring.Component):
 
         # -- the reply -----------------------------------------------------------------------
         # Everything the reply describes is taken on the cycle the request is applied: the
-        # link's counters by the copy above, ``pos`` and ``neg`` outside (``ext``),
-        # every other byte into a shift register that moves on one byte per byte sent.
+        # link's counters and ``next_seq`` by the copy above, ``pos`` and ``neg`` outside
+        # (``ext``), every other byte into a shift register that moves on one byte per byte
+        # sent.
         c_first, c_len = self._counter_span
         x_first, x_len = self._ext_span
         fields = field_offsets(link)
+        s_first = fields["next_seq"][0]
         tm_bytes = self.tm.as_value()
-        own = {"next_seq": self.next_seq, "channel": self.tm_channel}
+        own = {"channel": self.tm_channel}
         shifted = []
         for name, (at, size) in fields.items():
-            if name in COUNTER_FIELDS or name in EXTERNAL_FIELDS:
+            if name in COUNTER_FIELDS or name in EXTERNAL_FIELDS or name == "next_seq":
                 continue
             if name in own:
                 shifted.append(own[name][:8 * size])
@@ -430,24 +439,26 @@ class HostLink(wiring.Component):
         held = Signal(sum(len(v) for v in shifted))
 
         idx, nidx = enc.idx, enc.next_idx
+        in_seq    = (idx >= s_first) & (idx < s_first + 2)
         in_counts = (idx >= c_first) & (idx < c_first + c_len)
         in_ext    = (idx >= x_first) & (idx < x_first + x_len)
-        from_held = ~in_counts & ~in_ext
+        from_held = ~in_seq & ~in_counts & ~in_ext
+        n_seq     = (nidx >= s_first) & (nidx < s_first + 2)
         n_word    = Signal(8)
         m.d.comb += [
-            n_word.eq((nidx - c_first) >> 1),
+            n_word.eq(Mux(n_seq, NEXT_SEQ_WORD, (nidx - c_first) >> 1)),
             f_rd.addr.eq(n_word),
             self.ext_idx.eq(idx),
             self.ext_next.eq(nidx),
             self.ext_take.eq(enc.take),
         ]
         counted = f_rd.data
-        half = (idx - c_first)[0]
+        half = Mux(in_seq, (idx - s_first)[0], (idx - c_first)[0])
         with m.If(apply & is_tm):
             m.d.sync += held.eq(Cat(*shifted))
         with m.Elif(enc.take & from_held):
             m.d.sync += held.eq(held[8:])
-        with m.If(in_counts):
+        with m.If(in_seq | in_counts):
             m.d.comb += enc.data.eq(Mux(half, counted[8:], counted[:8]))
         with m.Elif(in_ext):
             m.d.comb += enc.data.eq(self.ext_data)

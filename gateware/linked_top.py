@@ -152,14 +152,17 @@ class LinkedTop(wiring.Component):
             tm.deferrals.eq(emu.deferrals),
             tm.saturations.eq(emu.saturations),
         ]
-        with m.Switch(host.tm_channel):
-            for i in range(hw.n):
+        # Only the instant of an applied request matters, when the channel is below n: its
+        # low bits select, the last channel stands for every other value.
+        def books(i: int) -> list:
+            return [tm.pend_pos.eq(pend_pos[i]), tm.pend_neg.eq(pend_neg[i]), tm.owed.eq(owed[i])]
+
+        with m.Switch(host.tm_channel[:(hw.n - 1).bit_length()]):
+            for i in range(hw.n - 1):
                 with m.Case(i):
-                    m.d.comb += [
-                        tm.pend_pos.eq(pend_pos[i]),
-                        tm.pend_neg.eq(pend_neg[i]),
-                        tm.owed.eq(owed[i]),
-                    ]
+                    m.d.comb += books(i)
+            with m.Default():
+                m.d.comb += books(hw.n - 1)
         return m
 
 

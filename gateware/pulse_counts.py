@@ -136,10 +136,13 @@ class PulseCounters(wiring.Component):
             m.d.sync += chan.eq(self.channel)
             for k, label_extra in enumerate(extra):
                 pick = Signal(n.bit_length() + 1, name=f"pick{k}")
-                with m.Switch(self.channel):
-                    for i in range(n):
+                # The channel is below n at a request: its low bits select.
+                with m.Switch(channel):
+                    for i in range(n - 1):
                         with m.Case(i):
                             m.d.comb += pick.eq(self.pending[2 * i + k] + rise[2 * i + k])
+                    with m.Default():
+                        m.d.comb += pick.eq(self.pending[2 * n - 2 + k] + rise[2 * n - 2 + k])
                 m.d.sync += label_extra.eq(pick)
         m.d.sync += want.eq(wanted & ~Mux(hit, 1 << which, 0))
 

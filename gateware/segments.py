@@ -134,7 +134,8 @@ class SegmentPlayer(wiring.Component):
         rd_ptr    = Signal(range(depth_words))
         queued    = Signal(range(link.fifo_depth + 1))
         state     = Signal(2, init=PlayState.IDLE)
-        left      = Signal(DURATION_BITS)
+        # Cycles to the next boundary, plus one (so a segment loads its duration as it is).
+        left      = Signal(DURATION_BITS, init=1)
         staged    = Signal()
         st_dur    = Signal(DURATION_BITS)
         st_last   = Signal()
@@ -177,7 +178,7 @@ class SegmentPlayer(wiring.Component):
 
         # -- writer: stage the next segment, or clear the shadows ----------------------
         stage_ok = ((job == Job.NONE) & (queued != 0) & ~staged & ~(cur_last & playing)
-                    & (~playing | (left >= link.stage_cyc)))
+                    & (~playing | (left >= link.stage_cyc + 1)))
         decide_stage = Signal()
         decide_zero  = Signal()
         m.d.comb += [
@@ -214,7 +215,7 @@ class SegmentPlayer(wiring.Component):
                 m.d.sync += j.eq(j + 1)
 
         # -- boundaries ------------------------------------------------------------------
-        boundary = playing & (left == 0)
+        boundary = playing & (left == 1)
         load     = Signal()
         end      = Signal()
         underrun = Signal()
@@ -226,7 +227,7 @@ class SegmentPlayer(wiring.Component):
         ]
         with m.If(load):
             m.d.sync += [
-                left.eq(st_dur - 1),
+                left.eq(st_dur),
                 cur_last.eq(st_last),
                 staged.eq(0),
                 self.played.eq(self.played + 1),
@@ -243,7 +244,7 @@ class SegmentPlayer(wiring.Component):
             m.d.sync += left.eq(left - 1)
 
         with m.If(self.start & idle):
-            m.d.sync += [state.eq(PlayState.PLAYING), left.eq(0)]
+            m.d.sync += [state.eq(PlayState.PLAYING), left.eq(1)]
         with m.If(self.start | self.arm_on):
             m.d.sync += self.arm.eq(1)
 
@@ -253,7 +254,7 @@ class SegmentPlayer(wiring.Component):
         with m.If(self.stop):
             m.d.sync += [
                 state.eq(PlayState.IDLE),
-                left.eq(0),
+                left.eq(1),
                 staged.eq(0),
                 cur_last.eq(0),
                 queued.eq(0),
