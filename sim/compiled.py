@@ -415,6 +415,15 @@ int main(int argc, char **argv) {
     if (n_cyc < 1) die(3, "stimulus file %s: header: the run must last at least 1 cycle", argv[1]);
     if (flags > 31) die(3, "stimulus file %s: header: unknown flags 0x%x", argv[1], flags);
     std::vector<Record> inputs, samples;
+    {   // room for every record at once (as many as the file can hold): no doubling while reading
+        long here = ftell(in);
+        if (here >= 0 && fseek(in, 0, SEEK_END) == 0) {
+            long size = ftell(in);
+            if (fseek(in, here, SEEK_SET) != 0) die(2, "cannot read the stimulus file %s", argv[1]);
+            uint64_t room = size > here ? (uint64_t)(size - here) / sizeof(Record) : 0;
+            inputs.reserve(n_rec < room ? n_rec : room);
+        }
+    }
     uint64_t last = 0;
     bool window = false;  // keep only the pulses that overlap cycles [win_start, win_stop)
     uint64_t win_start = 0, win_stop = 0;
@@ -485,6 +494,7 @@ int main(int argc, char **argv) {
     std::vector<EdgeOut> ebuf;
     ebuf.reserve(1 << 16);
     std::vector<uint64_t> counts(2 * n_ch, 0), sample_rows;
+    sample_rows.reserve(samples.size() * (1 + 2 * n_ch));
     std::vector<uint64_t> rose(2 * n_ch, 0);  // with a window: the rise of each line's current pulse
     uint32_t prev = 0;  // logical level of every line at the last cycle seen, bit 2 * channel + line
     auto put_edge = [&](uint64_t cycle, uint32_t line, uint32_t level) {
@@ -1000,8 +1010,11 @@ def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[i
     # The port plan of everything but the pin, exactly as the Python testbench makes it.
     plan = input_plan(params, dataclasses.replace(stim, strobe_edges=()))
     kinds = {name: kind for kind, (name, _, _) in enumerate(input_ports(params))}
-    rows = [(cycle, kinds[port], value) for cycle, ports in plan.items() for port, value in ports.items()]
-    planned = np.array(rows, dtype=np.int64).reshape(-1, 3)
+    # Straight into an array: a list of a tuple per port write would cost more than the plan itself.
+    count = sum(len(ports) for ports in plan.values())
+    planned = np.fromiter((x for cycle, ports in plan.items() for port, value in ports.items()
+                           for x in (cycle, kinds[port], value)), dtype=np.int64, count=3 * count).reshape(-1, 3)
+    del plan
     edges = np.asarray(stim.strobe_edges, dtype=np.int64)
     edges = edges[edges < stim.cycles]
     idle = 0 if params.edge_rising else 1
