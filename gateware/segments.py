@@ -4,7 +4,7 @@ Rules: ``docs/link.md``, section "Playback". The pure-Python twin is
 ``dvgate.sim.link_model.PlayerModel``; tests hold the two equal cycle by cycle.
 """
 
-from amaranth.hdl import Module, Signal, signed
+from amaranth.hdl import Module, Mux, Signal, signed
 from amaranth.lib import enum, memory, wiring
 from amaranth.lib.wiring import In, Out
 
@@ -115,8 +115,9 @@ class SegmentPlayer(wiring.Component):
             "underruns": Out(COUNT_BITS),
         })
         # The reader only uses words of committed segments, which the writer never touches.
-        self.fifo = memory.Memory(shape=8 * fifo_lanes(link), depth=link.fifo_depth * link.segment_words, init=[],
-                                  attrs=NO_RW_CHECK)
+        # One word more than the segments need: never written, it reads zero for clearing.
+        self.fifo = memory.Memory(shape=8 * fifo_lanes(link), depth=link.fifo_depth * link.segment_words + 1,
+                                  init=[], attrs=NO_RW_CHECK)
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -170,7 +171,8 @@ class SegmentPlayer(wiring.Component):
 
         # -- FIFO reads ---------------------------------------------------------------
         rd_next = Signal.like(rd_ptr)
-        m.d.comb += [rd_next.eq(rd_ptr + 1), rd.addr.eq(rd_ptr)]
+        zeroing = Signal()
+        m.d.comb += [rd_next.eq(rd_ptr + 1), rd.addr.eq(Mux(zeroing, depth_words, rd_ptr))]
         with m.If(rd_ptr == depth_words - 1):
             m.d.comb += rd_next.eq(0)
         with m.If(rd_inc):
@@ -190,6 +192,9 @@ class SegmentPlayer(wiring.Component):
             m.d.sync += [job.eq(Job.STAGE), j.eq(1), need_zero.eq(0)]
         with m.If(decide_zero):
             m.d.sync += [job.eq(Job.ZERO), j.eq(1), need_zero.eq(0)]
+        # Clearing reads the word that is never written, a cycle ahead as staging does: the
+        # rates always come from the read port.
+        m.d.comb += [zeroing.eq(decide_zero | (job == Job.ZERO)), self.rate_data.eq(rd.data[:link.hw.rate_bits])]
 
         with m.If(job == Job.STAGE):
             with m.If(j == 1):
@@ -199,7 +204,6 @@ class SegmentPlayer(wiring.Component):
                 m.d.comb += [
                     self.rate_we.eq(1),
                     self.rate_addr.eq(j - 2),
-                    self.rate_data.eq(rd.data[:link.hw.rate_bits]),
                     rd_inc.eq(j <= n),
                 ]
             with m.If(j == n + 1):
@@ -208,7 +212,7 @@ class SegmentPlayer(wiring.Component):
             with m.Else():
                 m.d.sync += j.eq(j + 1)
         with m.Elif(job == Job.ZERO):
-            m.d.comb += [self.rate_we.eq(1), self.rate_addr.eq(j - 1), self.rate_data.eq(0)]
+            m.d.comb += [self.rate_we.eq(1), self.rate_addr.eq(j - 1)]
             with m.If(j == n):
                 m.d.sync += job.eq(Job.NONE)
             with m.Else():
