@@ -665,11 +665,11 @@ int main(int argc, char **argv) {
     }
     words.insert(words.end(), counts.begin(), counts.end());
     words.push_back(samples.size());
-    words.insert(words.end(), sample_rows.begin(), sample_rows.end());
     FILE *out = fopen(argv[3], "wb");
     if (!out) die(2, "cannot write %s", argv[3]);
     fwrite("DVGRES01", 1, 8, out);
     fwrite(words.data(), 8, words.size(), out);
+    fwrite(sample_rows.data(), 8, sample_rows.size(), out);  // not copied into words: long runs have many
     if (fclose(out) != 0) die(2, "cannot write %s", argv[3]);
     return 0;
 }
