@@ -39,5 +39,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="report folder (default: dvgate-report); an earlier report there is replaced")
     parser.add_argument("--engine", choices=ENGINE_NAMES, default=None,
                         help="simulation engine (default: the compiled gateware where a C++ compiler is found, "
-                             "else the event-driven reference model; never Amaranth's slow simulator)")
+                             "else the event-driven reference model; never Amaranth's slow simulator). The "
+                             "compiled engine counts the pulses itself, so memory does not grow with them; the "
+                             "others return every pulse edge (fine for short profiles)")
     parser.set_defaults(func=run)
