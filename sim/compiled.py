@@ -27,7 +27,9 @@ Files (little-endian):
   i64 value. Kind ``i`` sets input port ``input_ports(params)[i]`` from that cycle on;
   kind 255 asks for the pulse counts seen up to that cycle (a sample); kind 254 (at most
   one) is an edge window from its cycle to its value (exclusive, see below). Records are
-  sorted by cycle; at one cycle the last record for a port wins.
+  sorted by cycle; at one cycle the last record for a port wins. The harness checks the
+  whole file before the run and reads the inputs again as the run reaches them, so it
+  keeps nothing per record but the sample cycles (the file must be a regular file).
 - edges: records of 16 bytes: u64 cycle, u32 line (``2 * channel + line``), u32 level.
   With a window, only the pulses that overlap it (rise before its end, fall after its
   start or never), each written as its rise and fall at the fall; and the run stops as
@@ -414,16 +416,11 @@ int main(int argc, char **argv) {
         die(3, "stimulus file %s: header: %u channels, but the design has %d", argv[1], file_ch, n_ch);
     if (n_cyc < 1) die(3, "stimulus file %s: header: the run must last at least 1 cycle", argv[1]);
     if (flags > 31) die(3, "stimulus file %s: header: unknown flags 0x%x", argv[1], flags);
-    std::vector<Record> inputs, samples;
-    {   // room for every record at once (as many as the file can hold): no doubling while reading
-        long here = ftell(in);
-        if (here >= 0 && fseek(in, 0, SEEK_END) == 0) {
-            long size = ftell(in);
-            if (fseek(in, here, SEEK_SET) != 0) die(2, "cannot read the stimulus file %s", argv[1]);
-            uint64_t room = size > here ? (uint64_t)(size - here) / sizeof(Record) : 0;
-            inputs.reserve(n_rec < room ? n_rec : room);
-        }
-    }
+    // A first pass checks every record and keeps the samples and the window; the inputs
+    // are read again, a block at a time, as the run reaches them (nothing per record kept).
+    const long records_at = ftell(in);
+    if (records_at < 0) die(2, "cannot read the stimulus file %s (not a regular file)", argv[1]);
+    std::vector<uint64_t> samples;
     uint64_t last = 0;
     bool window = false;  // keep only the pulses that overlap cycles [win_start, win_stop)
     uint64_t win_start = 0, win_stop = 0;
@@ -449,7 +446,7 @@ int main(int argc, char **argv) {
             if (rec.cycle < 1 || rec.cycle > n_cyc)
                 BAD("a sample must be at cycle 1 to %llu", (unsigned long long)n_cyc);
             if (v != 0) BAD("value is %lld, must be 0", (long long)v);
-            samples.push_back(rec);
+            samples.push_back(rec.cycle);
             continue;
         }
         if (rec.kind == WINDOW) {
@@ -465,12 +462,10 @@ int main(int argc, char **argv) {
         if (v < info.port_min[rec.kind] || v > info.port_max[rec.kind])
             BAD("value %lld does not fit the port (%lld to %lld)", (long long)v,
                 (long long)info.port_min[rec.kind], (long long)info.port_max[rec.kind]);
-        inputs.push_back(rec);
     }
     if (fgetc(in) != EOF)
         die(3, "stimulus file %s: more bytes after record %llu than the header announces", argv[1],
             (unsigned long long)n_rec);
-    fclose(in);
 
     const bool summary = flags & 1, fast = !(flags & 2), check = flags & 4, progress = flags & 8, vcd_on = flags & 16;
     if (vcd_on && argc < 5) die(2, "VCD requested but no VCD path given");
@@ -511,7 +506,31 @@ int main(int argc, char **argv) {
             if (((prev >> line) & 1u) && rose[line] < win_stop) open |= 1u << line;
         return open;
     };
-    size_t ri = 0, si = 0;
+    size_t si = 0;
+    // The input records, read again a block at a time as the run reaches them.
+    if (fseek(in, records_at, SEEK_SET) != 0) die(2, "cannot read the stimulus file %s again", argv[1]);
+    std::vector<Record> block(4096);
+    size_t in_block = 0, at_block = 0;
+    uint64_t records_read = 0;
+    auto fill = [&]() {  // true when block[at_block] is the next input record
+        for (;;) {
+            for (; at_block < in_block; at_block++)
+                if (block[at_block].kind != SAMPLE && block[at_block].kind != WINDOW) return true;
+            if (records_read == n_rec) return false;
+            uint64_t want = n_rec - records_read;
+            if (want > block.size()) want = block.size();
+            if (fread(block.data(), sizeof(Record), want, in) != want)
+                die(2, "the stimulus file %s changed during the run", argv[1]);
+            records_read += want;
+            in_block = (size_t)want;
+            at_block = 0;
+        }
+    };
+    auto next_input = [&]() -> uint64_t { return fill() ? block[at_block].cycle : n_cyc; };
+    auto pop_input = [&]() -> const Record & {
+        fill();
+        return block[at_block++];
+    };
     uint64_t k = 0, stepped = 0, skipped = 0, next_check = 0;
     const uint64_t report_every = n_cyc / 200 + 1;
     uint64_t next_report = report_every;
@@ -539,8 +558,8 @@ int main(int argc, char **argv) {
         prev = now;
     };
     auto take_samples = [&](uint64_t upto) {  // samples at cycles <= upto see the counts so far
-        while (si < samples.size() && samples[si].cycle <= upto) {
-            sample_rows.push_back(samples[si].cycle);
+        while (si < samples.size() && samples[si] <= upto) {
+            sample_rows.push_back(samples[si]);
             sample_rows.insert(sample_rows.end(), counts.begin(), counts.end());
             si++;
         }
@@ -552,8 +571,8 @@ int main(int argc, char **argv) {
     };
     // Cycle k: its inputs, its outputs observed, then the clock edge to cycle k + 1.
     auto one_cycle = [&]() {
-        while (ri < inputs.size() && inputs[ri].cycle == k) {
-            const Record &rec = inputs[ri++];
+        while (next_input() == k) {
+            const Record &rec = pop_input();
             ports[rec.kind] = (uint64_t)rec.value;
             design_set_port(rec.kind, rec.value);
         }
@@ -587,9 +606,9 @@ int main(int argc, char **argv) {
             fflush(stderr);
             next_report = k + report_every;
         }
-        uint64_t next_input = ri < inputs.size() ? inputs[ri].cycle : n_cyc;
-        if (fast && !vcd_on && k >= next_check && next_input > k + 1 && prev == design_register_levels()) {
-            uint64_t span = design_quiet_span(next_input - k, ports.data());
+        uint64_t next_input_at = next_input();
+        if (fast && !vcd_on && k >= next_check && next_input_at > k + 1 && prev == design_register_levels()) {
+            uint64_t span = design_quiet_span(next_input_at - k, ports.data());
             if (span > 1) {
                 if (!check) {
                     take_samples(k + span - 1);
@@ -647,6 +666,7 @@ int main(int argc, char **argv) {
         for (int line = 0; line < 2 * n_ch; line++)
             if ((open >> line) & 1u) put_edge(rose[line], (uint32_t)line, 1u);
     }
+    fclose(in);
     if (!ebuf.empty()) fwrite(ebuf.data(), sizeof(EdgeOut), ebuf.size(), edges_out);
     if (fclose(edges_out) != 0) die(2, "cannot write %s", argv[2]);
 
