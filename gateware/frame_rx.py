@@ -95,6 +95,8 @@ class FrameDecoder(wiring.Component):
         expected = Signal(8)
         known    = Signal()
         value    = Signal(8)
+        # Only known types are kept: as many low bits as the largest needs, the rest zero.
+        kept     = Signal(max(self._lengths).bit_length())
 
         got      = self.i.valid
         raw      = self.i.payload.data
@@ -102,6 +104,7 @@ class FrameDecoder(wiring.Component):
         escaped  = (raw == (FLAG ^ ESC_XOR)) | (raw == (ESC ^ ESC_XOR))
 
         m.d.sync += [self.byte_stb.eq(0), self.end_stb.eq(0)]
+        m.d.comb += self.type.eq(kept)
         m.d.comb += [
             value.eq(Mux(esc, raw ^ ESC_XOR, raw)),
             check.data.eq(value),
@@ -111,7 +114,7 @@ class FrameDecoder(wiring.Component):
         for ftype, size in self._lengths.items():
             with m.If(value == ftype):
                 m.d.comb += known.eq(1)
-            with m.If(self.type == ftype):
+            with m.If(kept == ftype):
                 m.d.comb += expected.eq(size)
 
         def end(ok: bool, reason: Reason) -> list:
@@ -149,7 +152,7 @@ class FrameDecoder(wiring.Component):
                     with m.Case(DecodeState.TYPE):
                         with m.If(known):
                             m.d.comb += check.valid.eq(1)
-                            m.d.sync += [self.type.eq(value), state.eq(DecodeState.LEN)]
+                            m.d.sync += [kept.eq(value), state.eq(DecodeState.LEN)]
                         with m.Else():
                             m.d.sync += [*end(False, Reason.FORMAT), state.eq(DecodeState.SKIP)]
                     with m.Case(DecodeState.LEN):

@@ -188,9 +188,12 @@ class HostLink(wiring.Component):
             raise ValueError("the counters must come later in the telemetry payload")
         self.counters = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS, init=[], attrs=NO_RW_CHECK)
         self._frozen = memory.Memory(shape=COUNT_BITS, depth=COUNTER_WORDS + 1, init=[], attrs=NO_RW_CHECK)
-        # The arguments of FAULT and IGNORE frames are shifted into the duration's register.
-        if 8 * max(2 + STORM_BYTES, IGNORE_BYTES) > DURATION_BITS:
-            raise ValueError("the FAULT and IGNORE arguments must fit the duration register")
+        # The arguments of FAULT and IGNORE frames go into one 32-bit word, byte by byte.
+        if max(2 + STORM_BYTES, IGNORE_BYTES) > 4:
+            raise ValueError("the FAULT and IGNORE arguments must fit one 32-bit word")
+        # Block RAM although tiny; its one read is on the cycle a frame ends, when no byte
+        # is written (see ``NO_RW_CHECK``).
+        self._args = memory.Memory(shape=32, depth=2, init=[], attrs={"ram_style": "block", **NO_RW_CHECK})
         self.decoder = FrameDecoder(board_lengths(link), link.timeout_cyc)
         reply_len = link.payload_len(FrameType.TELEMETRY_REPLY)
         self.encoder = FrameEncoder(reply_len, pad_to=link.reply_bytes, frame=(FrameType.TELEMETRY_REPLY, reply_len))
@@ -210,7 +213,7 @@ class HostLink(wiring.Component):
         seq_ok   = Signal()
         bad      = Signal()
         room     = Signal()
-        dur      = Signal(DURATION_BITS)
+        nonzero  = Signal()
         short    = Signal()
         sign     = Signal()
         sub      = Signal(range(rb))
@@ -228,14 +231,19 @@ class HostLink(wiring.Component):
         is_ign   = ftype == FrameType.IGNORE
         is_seq   = is_seg | ftype.matches(FrameType.ARM, FrameType.DISARM, FrameType.START,
                                           FrameType.FAULT, FrameType.IGNORE)
-        dur_full = Cat(dur[8:], value)
-        # A FAULT frame's channel, set byte and storm period, and an IGNORE frame's cycles,
-        # end in the top bytes of ``dur`` (shifted in from payload byte 2 on).
-        f_base   = DURATION_BITS - 8 * (2 + STORM_BYTES)
-        f_chan   = dur[f_base: f_base + 8]
-        f_set    = dur[f_base + 8: f_base + 16]
-        f_storm  = dur[f_base + 16:]
-        i_cycles = dur[DURATION_BITS - 8 * IGNORE_BYTES:]
+        # A FAULT frame's channel, set byte and storm period, and an IGNORE frame's cycles:
+        # payload bytes 2 on, each into its byte lane of a memory word (one word per frame
+        # type), read all the time.
+        m.submodules.args = args = self._args
+        a_wr     = args.write_port(granularity=8)
+        a_rd     = args.read_port(transparent_for=())
+        arg      = a_rd.data
+        f_chan   = arg[0:8]
+        f_set    = arg[8:16]
+        f_storm  = arg[16:16 + 8 * STORM_BYTES]
+        i_cycles = arg[:8 * IGNORE_BYTES]
+        lane     = (idx - 2)[:2]
+        m.d.comb += [a_wr.addr.eq(is_ign), a_rd.addr.eq(is_ign), a_wr.data.eq(value.replicate(4))]
         sign_byte, sign_bit = divmod(rate_bits - 1, 8)
         min_byte = Signal(8)
         with m.Switch(idx):
@@ -285,22 +293,22 @@ class HostLink(wiring.Component):
                     with m.Else():
                         m.d.sync += sub.eq(sub + 1)
             with m.If((is_fault | is_ign) & (idx >= 2)):
-                m.d.sync += dur.eq(dur_full)
+                m.d.comb += a_wr.en.eq(1 << lane)
+                # Whether the value so far is zero, and its top byte's bits beyond the field.
+                m.d.sync += nonzero.eq((nonzero & (idx != 2)) | (value != 0))
             with m.If(is_fault):
                 with m.If((idx == 2) & (value >= hw.n)):
                     m.d.sync += bad.eq(1)
                 with m.If((idx == 3) & ((value >> len(FAULT_SET_BITS)) != 0)):
                     m.d.sync += bad.eq(1)
                 if 8 * STORM_BYTES > STORM_PERIOD_BITS:
-                    storm_full = dur_full[DURATION_BITS - 8 * STORM_BYTES:]
-                    with m.If((idx == 3 + STORM_BYTES) & ((storm_full >> STORM_PERIOD_BITS) != 0)):
+                    with m.If((idx == 3 + STORM_BYTES) & ((value >> (STORM_PERIOD_BITS % 8)) != 0)):
                         m.d.sync += bad.eq(1)
             with m.If(is_ign & (idx == 1 + IGNORE_BYTES)):
-                cycles_full = dur_full[DURATION_BITS - 8 * IGNORE_BYTES:]
-                with m.If(cycles_full == 0):
+                with m.If(~(nonzero & (idx != 2)) & (value == 0)):
                     m.d.sync += bad.eq(1)
                 if 8 * IGNORE_BYTES > IGNORE_CYCLES_BITS:
-                    with m.If((cycles_full >> IGNORE_CYCLES_BITS) != 0):
+                    with m.If((value >> (IGNORE_CYCLES_BITS % 8)) != 0):
                         m.d.sync += bad.eq(1)
 
         # -- end of a frame: apply it, or count why not ------------------------------------
@@ -327,8 +335,9 @@ class HostLink(wiring.Component):
             self.arm_on.eq(apply & (ftype == FrameType.ARM)),
             self.stop.eq(apply & (ftype == FrameType.DISARM)),
         ]
-        # The fault and ignore ports: strobes from registers, data straight from ``dur``,
-        # which no payload byte changes on the cycle after a frame ends.
+        # The fault and ignore ports: strobes from registers, data from the arguments' word,
+        # read on the cycle the frame ends (when no payload byte is written) and shown on
+        # the next.
         m.d.sync += [
             self.fault_we.eq(apply & is_fault),
             self.ignore_we.eq(apply & is_ign),
