@@ -66,8 +66,8 @@ def default_engine() -> tuple[Engine, str]:
     found: it runs the gateware itself. Otherwise the reference model, which works
     event by event: a run of a motion profile is billions of cycles but only as many
     events as pulses, strobes and rate changes, so the model is far faster than
-    Amaranth's cycle-by-cycle simulator (the other fallback of ``fastest``). On the
-    demo (715 million cycles) the two took 11.8 s (compiled) and 11.3 s (model).
+    Amaranth's cycle-by-cycle simulator (the other fallback of ``fastest``). Figures for
+    the demo: ``docs/performance.md``, section "dvgate run".
     """
     try:
         from dvgate.sim import engines
