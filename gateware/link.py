@@ -17,7 +17,7 @@ from dvgate.gateware.faults import FaultLayout
 from dvgate.gateware.frame_rx import REASON_BITS, FrameDecoder
 from dvgate.gateware.frame_tx import FrameEncoder
 from dvgate.gateware.rates import addr_bits
-from dvgate.gateware.segments import NO_RW_CHECK, fifo_lanes
+from dvgate.gateware.segments import NO_RW_CHECK, fifo_lanes, read_data
 from dvgate.gateware.uart_rx import RxByte
 from dvgate.linkspec import (
     COUNT_BITS,
@@ -237,7 +237,7 @@ class HostLink(wiring.Component):
         m.submodules.args = args = self._args
         a_wr     = args.write_port(granularity=8)
         a_rd     = args.read_port(transparent_for=())
-        arg      = a_rd.data
+        arg      = read_data(m, a_rd, a_wr)
         f_chan   = arg[0:8]
         f_set    = arg[8:16]
         f_storm  = arg[16:16 + 8 * STORM_BYTES]
@@ -374,7 +374,7 @@ class HostLink(wiring.Component):
         word   = Signal(range(COUNTER_WORDS))
         p_upd  = Signal()
         p_word = Signal.like(word)
-        old    = c_upd.data
+        old    = read_data(m, c_upd, c_wr)
         full   = old == _COUNT_MAX
         carry  = p_upd & (p_word == ACCEPTED_WORD) & full
         write  = p_upd & ~((p_word >= reject_word(Reason(0))) & full)
@@ -412,6 +412,7 @@ class HostLink(wiring.Component):
             m.d.sync += walk.eq(walk + 1)
         m.d.sync += [r_v.eq(issue), r_word.eq(w_addr)]
         m.d.comb += c_rd.addr.eq(w_addr)
+        walked = read_data(m, c_rd, c_wr)
         with m.If(apply & is_tm):
             # ``next_seq`` at the request (no count is written on this cycle: the frame
             # before ended two cycles ago at the latest).
@@ -419,7 +420,7 @@ class HostLink(wiring.Component):
         with m.Elif(cow):
             m.d.comb += [f_wr.addr.eq(p_word), f_wr.data.eq(old), f_wr.en.eq(1)]
         with m.Elif(r_v & ~copied.bit_select(r_word, 1)):
-            m.d.comb += [f_wr.addr.eq(r_word), f_wr.data.eq(c_rd.data), f_wr.en.eq(1)]
+            m.d.comb += [f_wr.addr.eq(r_word), f_wr.data.eq(walked), f_wr.en.eq(1)]
             m.d.sync += copied.bit_select(r_word, 1).eq(1)
         with m.If(write):
             m.d.sync += copied.bit_select(p_word, 1).eq(1)
@@ -461,7 +462,7 @@ class HostLink(wiring.Component):
             self.ext_next.eq(nidx),
             self.ext_take.eq(enc.take),
         ]
-        counted = f_rd.data
+        counted = read_data(m, f_rd, f_wr)
         half = Mux(in_seq, (idx - s_first)[0], (idx - c_first)[0])
         with m.If(apply & is_tm):
             m.d.sync += held.eq(Cat(*shifted))

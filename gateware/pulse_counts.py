@@ -10,7 +10,7 @@ from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.segments import NO_RW_CHECK
+from dvgate.gateware.segments import NO_RW_CHECK, read_data
 
 #: Width of the per-line pulse counters (wrap).
 PULSE_COUNT_BITS = 32
@@ -117,7 +117,7 @@ class PulseCounters(wiring.Component):
         m.d.comb += [
             t_rd.addr.eq(after),
             t_wr.addr.eq(Mux(hit, slots + slot[0], slot)),
-            t_wr.data.eq(t_rd.data + Mux(hit, 0, pend)),
+            t_wr.data.eq(read_data(m, t_rd, t_wr) + Mux(hit, 0, pend)),
             t_wr.en.eq(1),
         ]
         for k in range(slots):
@@ -152,7 +152,7 @@ class PulseCounters(wiring.Component):
         m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.next_idx - base), a_rd.addr.eq(slots + n_off[2])]
         lane  = offset[:2]
         first = lane == 0
-        total = a_rd.data.word_select(lane, 8)
+        total = read_data(m, a_rd, t_wr).word_select(lane, 8)
         add   = Mux(first, Mux(offset[2], extra[1], extra[0]), 0)
         total_sum = Signal(9)
         m.d.comb += [total_sum.eq(total + add + (carry & ~first)), self.data.eq(total_sum[:8])]

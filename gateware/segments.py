@@ -4,7 +4,7 @@ Rules: ``docs/link.md``, section "Playback". The pure-Python twin is
 ``dvgate.sim.link_model.PlayerModel``; tests hold the two equal cycle by cycle.
 """
 
-from amaranth.hdl import Module, Mux, Signal, signed
+from amaranth.hdl import Module, Mux, Signal, Value, signed
 from amaranth.lib import enum, memory, wiring
 from amaranth.lib.wiring import In, Out
 
@@ -17,6 +17,23 @@ _COUNT_MAX = (1 << COUNT_BITS) - 1
 #: synthesis need not make block RAM's unspecified result of such a read defined (it
 #: would, with flip-flops and multiplexers beside the RAM).
 NO_RW_CHECK = {"no_rw_check": 1}
+#: Tests set this to give every read of such a memory that collides with a write an
+#: unusable result (the complement of the word), as block RAM may, to show that no such
+#: read is ever used. Read at elaboration.
+POISON_COLLISIONS = False
+
+
+def read_data(m: Module, read: memory.ReadPort, write: memory.WritePort) -> Value:
+    """The data of a read port of a ``NO_RW_CHECK`` memory (poisoned as the tests ask).
+
+    With :data:`POISON_COLLISIONS`, a read whose address ``write`` writes on the same
+    cycle gives the complement of the word on the next.
+    """
+    if not POISON_COLLISIONS:
+        return read.data
+    collided = Signal(name="collided")
+    m.d.sync += collided.eq(write.en.any() & (write.addr == read.addr))
+    return Mux(collided, ~read.data, read.data)
 
 
 def fifo_lanes(link: LinkParams) -> int:
@@ -194,11 +211,12 @@ class SegmentPlayer(wiring.Component):
             m.d.sync += [job.eq(Job.ZERO), j.eq(1), need_zero.eq(0)]
         # Clearing reads the word that is never written, a cycle ahead as staging does: the
         # rates always come from the read port.
-        m.d.comb += [zeroing.eq(decide_zero | (job == Job.ZERO)), self.rate_data.eq(rd.data[:link.hw.rate_bits])]
+        word = read_data(m, rd, wr)
+        m.d.comb += [zeroing.eq(decide_zero | (job == Job.ZERO)), self.rate_data.eq(word[:link.hw.rate_bits])]
 
         with m.If(job == Job.STAGE):
             with m.If(j == 1):
-                m.d.sync += [st_dur.eq(rd.data[:DURATION_BITS]), st_last.eq(rd.data[DURATION_BITS])]
+                m.d.sync += [st_dur.eq(word[:DURATION_BITS]), st_last.eq(word[DURATION_BITS])]
                 m.d.comb += rd_inc.eq(1)
             with m.Else():
                 m.d.comb += [
