@@ -93,6 +93,12 @@ class HostLink(wiring.Component):
     (segments), and no telemetry reply is still in its busy time (telemetry requests).
     Anything else is counted under one :class:`dvgate.linkspec.Reason` and has no effect.
 
+    The telemetry reply describes the cycle its request is applied (``tm_stb``). Small in
+    logic: the frame counters live in block RAM (``counters``) and are copied for the
+    reply into a second one, each by a walker or, if it changes first, by its change; the
+    pulse counts come from outside, byte by byte (``ext_*``); every other field is taken
+    into a shift register that moves on one byte per byte sent.
+
     Parameters
     ----------
     link : LinkParams
