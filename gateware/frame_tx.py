@@ -16,8 +16,8 @@ class FrameEncoder(wiring.Component):
     The payload is not held here: while sending, the encoder shows the index of the
     payload byte it needs on ``idx`` and reads ``data`` in the same cycle. ``take`` marks
     the cycle it is done with that byte (``idx`` moves on at the next one), so a parent
-    may read its payload from a shift register or, one cycle ahead at ``next_idx``, from
-    a memory.
+    may read its payload from a shift register, or from a memory one cycle ahead: at
+    ``idx + 1``, enabled by ``step``.
 
     With ``pad_to``, the frame is followed by filler bytes (:data:`FILLER`, outside any
     frame) until ``pad_to`` bytes have been sent in all, so every frame takes the same
@@ -46,8 +46,8 @@ class FrameEncoder(wiring.Component):
         The payload byte at ``idx``.
     take : Signal(1), out
         The payload byte at ``idx`` has been sent (with its escape): ``idx`` moves on.
-    next_idx : Signal(8), out
-        ``idx`` as it will be on the next cycle (the address for a memory read ahead).
+    step : Signal(1), out
+        ``idx`` moves on to ``idx + 1`` at the next cycle (for a read ahead).
     o : stream.Signature(8), out
         Bytes for the UART transmitter.
     busy : Signal(1), out
@@ -71,7 +71,7 @@ class FrameEncoder(wiring.Component):
             "idx": Out(8),
             "data": In(8),
             "take": Out(1),
-            "next_idx": Out(8),
+            "step": Out(1),
             "o": Out(stream.Signature(8)),
             "busy": Out(1),
         })
@@ -90,10 +90,9 @@ class FrameEncoder(wiring.Component):
         value   = Signal(8)
         special = Signal()
 
-        step = Signal()
+        step = self.step
         m.d.comb += [
             self.idx.eq(j - 2),
-            self.next_idx.eq(j + step - 2),
             special.eq((value == FLAG) | (value == ESC)),
             gen.data.eq(value),
         ]

@@ -124,9 +124,10 @@ class HostLink(wiring.Component):
         ``pos`` and ``neg`` through ``ext_*`` instead.
     tm_stb : Signal(1), out
         A telemetry request is applied this cycle: the instant the reply describes.
-    ext_idx, ext_next : Signal(8), out
-        While a reply is sent: the payload byte wanted now, and the one wanted on the
-        next cycle (for a memory read ahead).
+    ext_idx : Signal(8), out
+        While a reply is sent: the payload byte wanted now.
+    ext_step : Signal(1), out
+        ``ext_idx`` moves on to ``ext_idx + 1`` at the next cycle (for a read ahead).
     ext_take : Signal(1), out
         The payload byte at ``ext_idx`` was sent.
     ext_data : Signal(8), in
@@ -170,7 +171,7 @@ class HostLink(wiring.Component):
             "tm": In(self._layout),
             "tm_stb": Out(1),
             "ext_idx": Out(8),
-            "ext_next": Out(8),
+            "ext_step": Out(1),
             "ext_take": Out(1),
             "ext_data": In(8),
             "fault_addr": Out(addr_bits(link.hw)),
@@ -454,7 +455,12 @@ class HostLink(wiring.Component):
                 shifted.append(tm_bytes[8 * at: 8 * (at + size)])
         held = Signal(sum(len(v) for v in shifted))
 
-        idx, nidx = enc.idx, enc.next_idx
+        # Memories are read a byte ahead, at ``idx + 1`` on the cycles ``idx`` moves on
+        # (``step``), and hold their word otherwise: no path from the byte sent (which
+        # decides an escape, so whether ``idx`` moves) to a read address.
+        idx = enc.idx
+        nidx = Signal(8)
+        m.d.comb += nidx.eq(idx + 1)
         in_seq    = (idx >= s_first) & (idx < s_first + 2)
         in_counts = (idx >= c_first) & (idx < c_first + c_len)
         in_ext    = (idx >= x_first) & (idx < x_first + x_len)
@@ -465,7 +471,8 @@ class HostLink(wiring.Component):
             n_word.eq(Mux(n_seq, NEXT_SEQ_WORD, (nidx - c_first) >> 1)),
             f_rd.addr.eq(n_word),
             self.ext_idx.eq(idx),
-            self.ext_next.eq(nidx),
+            self.ext_step.eq(enc.step),
+            f_rd.en.eq(enc.step),
             self.ext_take.eq(enc.take),
         ]
         counted = read_data(m, f_rd, f_wr)

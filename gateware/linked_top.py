@@ -131,7 +131,7 @@ class LinkedTop(wiring.Component):
             counters.snap.eq(host.tm_stb),
             counters.channel.eq(host.tm_channel),
             counters.idx.eq(host.ext_idx),
-            counters.next_idx.eq(host.ext_next),
+            counters.step.eq(host.ext_step),
             counters.take.eq(host.ext_take),
             host.ext_data.eq(counters.data),
         ]

@@ -52,8 +52,10 @@ class PulseCounters(wiring.Component):
         The telemetry's instant.
     channel : Signal(8), in
         The channel to report, read with ``snap``.
-    idx, next_idx : Signal(8), in
-        Payload byte wanted now, and on the next cycle.
+    idx : Signal(8), in
+        Payload byte wanted now.
+    step : Signal(1), in
+        ``idx`` moves on to ``idx + 1`` at the next cycle (the bytes are read a byte ahead).
     take : Signal(1), in
         The byte at ``idx`` was sent.
     data : Signal(8), out
@@ -72,7 +74,7 @@ class PulseCounters(wiring.Component):
             "snap": In(1),
             "channel": In(8),
             "idx": In(8),
-            "next_idx": In(8),
+            "step": In(1),
             "take": In(1),
             "data": Out(8),
         })
@@ -149,7 +151,8 @@ class PulseCounters(wiring.Component):
         # The reply's bytes: the total set aside plus the pending part, byte by byte.
         offset = Signal(8)
         n_off  = Signal(8)
-        m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.next_idx - base), a_rd.addr.eq(slots + n_off[2])]
+        m.d.comb += [offset.eq(self.idx - base), n_off.eq(self.idx + 1 - base), a_rd.addr.eq(slots + n_off[2]),
+                     a_rd.en.eq(self.step)]
         lane  = offset[:2]
         first = lane == 0
         total = read_data(m, a_rd, t_wr).word_select(lane, 8)

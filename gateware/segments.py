@@ -32,7 +32,7 @@ def read_data(m: Module, read: memory.ReadPort, write: memory.WritePort) -> Valu
     if not POISON_COLLISIONS:
         return read.data
     collided = Signal(name="collided")
-    m.d.sync += collided.eq(write.en.any() & (write.addr == read.addr))
+    m.d.sync += collided.eq(write.en.any() & read.en & (write.addr == read.addr))
     return Mux(collided, ~read.data, read.data)
 
 

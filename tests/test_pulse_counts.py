@@ -49,19 +49,21 @@ def run(n: int, levels: list[int], snaps: list[tuple[int, int]], read_gap: int) 
             ctx.set(dut.snap, cycle in plan)
             ctx.set(dut.channel, plan.get(cycle, (cycle * 7) % 256))  # junk between requests
             if cycle in plan:
-                reading, reply, wait = 0, bytearray(), read_gap
-            take = False
+                # As the encoder does: from the byte before ``pos``, one step per byte.
+                reading, reply, wait = -1, bytearray(), read_gap
+            step = False
             if reading is not None:
                 if wait:
                     wait -= 1
                 else:
-                    take = True
-            idx = BASE + (reading if reading is not None else 20)
-            ctx.set(dut.idx, idx)
-            ctx.set(dut.next_idx, idx + take)
+                    step = True
+            take = step and reading >= 0
+            ctx.set(dut.idx, BASE + (reading if reading is not None else 20))
+            ctx.set(dut.step, step)
             ctx.set(dut.take, take)
             if take:
                 reply.append(ctx.get(dut.data))
+            if step:
                 reading += 1
                 wait = 3
                 if reading == 8:
