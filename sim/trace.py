@@ -6,8 +6,12 @@ return the same structure, so tests compare them with ``==``. Rules: ``docs/timi
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from itertools import pairwise
+from typing import Any, overload
+
+import numpy as np
 
 from dvgate.params import STORM_PERIOD_BITS
 
@@ -44,6 +48,64 @@ class RateChange:
     cycle: int
     channel: int
     rate: int
+
+
+#: Elements a compact sequence turns into Python objects at a time while iterating.
+_CHUNK = 1 << 16
+
+
+def _int64(values: Any) -> np.ndarray:
+    """A read-only one-dimensional int64 copy of ``values``."""
+    out = np.array(values, dtype=np.int64, copy=True).reshape(-1)
+    out.setflags(write=False)
+    return out
+
+
+class Cycles(Sequence[int]):
+    """Strictly increasing cycle numbers held in one int64 array: a compact ``tuple[int, ...]``.
+
+    For long runs (a billion-cycle run has millions of strobe edges): it reads like the
+    tuple it replaces (indexing, iteration and ``==`` give Python ints and compare equal
+    to a tuple of the same numbers), and :func:`numpy.asarray` gets the array without a
+    copy. The array is read-only.
+    """
+
+    __slots__ = ("array",)
+
+    def __init__(self, values: Any) -> None:
+        self.array = _int64(values)
+
+    def __len__(self) -> int:
+        return len(self.array)
+
+    @overload
+    def __getitem__(self, index: int) -> int: ...
+    @overload
+    def __getitem__(self, index: slice) -> Cycles: ...
+    def __getitem__(self, index: int | slice) -> int | Cycles:
+        if isinstance(index, slice):
+            return Cycles(self.array[index])
+        return int(self.array[index])
+
+    def __iter__(self) -> Iterator[int]:
+        for at in range(0, len(self.array), _CHUNK):
+            yield from self.array[at:at + _CHUNK].tolist()
+
+    def __array__(self, dtype: Any = None, copy: bool | None = None) -> np.ndarray:
+        return self.array if dtype is None else self.array.astype(dtype, copy=bool(copy))
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, Cycles):
+            return bool(np.array_equal(self.array, other.array))
+        if isinstance(other, tuple):
+            return len(other) == len(self) and all(a == b for a, b in zip(self, other, strict=True))
+        return NotImplemented
+
+    def __hash__(self) -> int:
+        return hash(tuple(self))
+
+    def __repr__(self) -> str:
+        return f"Cycles({len(self)} cycles from {self[0]} to {self[-1]})" if len(self) else "Cycles(())"
 
 
 @dataclass(frozen=True)
@@ -89,6 +151,82 @@ class Faults:
                 or self.storm_period != 0)
 
 
+class RateChanges(Sequence[RateChange]):
+    """Rate changes held as three int64 arrays: a compact ``tuple[RateChange, ...]``.
+
+    For long runs (a rate program of hours has millions of changes): every reader that
+    iterates or indexes gets :class:`RateChange` records made on the fly, and ``==``
+    compares equal to a tuple of the same records; :attr:`cycle`, :attr:`channel` and
+    :attr:`rate` give the arrays (read-only) to readers that work on arrays.
+
+    Parameters
+    ----------
+    cycle, channel, rate : array_like of int
+        One entry per change, of equal length.
+    """
+
+    __slots__ = ("channel", "cycle", "rate")
+
+    def __init__(self, cycle: Any, channel: Any, rate: Any) -> None:
+        self.cycle = _int64(cycle)
+        self.channel = _int64(channel)
+        self.rate = _int64(rate)
+        if not len(self.cycle) == len(self.channel) == len(self.rate):
+            raise ValueError(f"rate changes: {len(self.cycle)} cycles, {len(self.channel)} channels and "
+                             f"{len(self.rate)} rates; give one of each per change")
+
+    @classmethod
+    def of(cls, changes: Sequence[RateChange]) -> RateChanges:
+        """``changes`` as a :class:`RateChanges` (itself when it already is one).
+
+        Raises
+        ------
+        OverflowError
+            If a cycle, channel or rate does not fit 64 signed bits.
+        """
+        if isinstance(changes, RateChanges):
+            return changes
+        n = len(changes)
+        return cls(np.fromiter((c.cycle for c in changes), np.int64, n),
+                   np.fromiter((c.channel for c in changes), np.int64, n),
+                   np.fromiter((c.rate for c in changes), np.int64, n))
+
+    def __len__(self) -> int:
+        return len(self.cycle)
+
+    @overload
+    def __getitem__(self, index: int) -> RateChange: ...
+    @overload
+    def __getitem__(self, index: slice) -> RateChanges: ...
+    def __getitem__(self, index: int | slice) -> RateChange | RateChanges:
+        if isinstance(index, slice):
+            return RateChanges(self.cycle[index], self.channel[index], self.rate[index])
+        return RateChange(int(self.cycle[index]), int(self.channel[index]), int(self.rate[index]))
+
+    def __iter__(self) -> Iterator[RateChange]:
+        for at in range(0, len(self.cycle), _CHUNK):
+            part = slice(at, at + _CHUNK)
+            for cycle, channel, rate in zip(self.cycle[part].tolist(), self.channel[part].tolist(),
+                                            self.rate[part].tolist(), strict=True):
+                yield RateChange(cycle, channel, rate)
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, RateChanges):
+            return all(np.array_equal(a, b) for a, b in ((self.cycle, other.cycle), (self.channel, other.channel),
+                                                          (self.rate, other.rate)))
+        if isinstance(other, tuple):
+            return len(other) == len(self) and all(a == b for a, b in zip(self, other, strict=True))
+        return NotImplemented
+
+    def __hash__(self) -> int:
+        return hash(tuple(self))
+
+    def __repr__(self) -> str:
+        if not len(self):
+            return "RateChanges(())"
+        return f"RateChanges({len(self)} changes, cycles {self.cycle[0]} to {self.cycle[-1]})"
+
+
 @dataclass(frozen=True)
 class FaultChange:
     """``channel`` has the fault set ``faults`` (the whole set) from ``cycle`` on."""
@@ -106,10 +244,12 @@ class Stimulus:
     ----------
     cycles : int
         Run length N: inputs for cycles 0..N-1, outputs observed for 1..N.
-    strobe_edges : tuple of int
+    strobe_edges : tuple of int, or Cycles
         Cycles at which the strobe pin toggles (inactive at reset), strictly increasing.
-    rate_changes : tuple of RateChange
-        Sorted by cycle; each at cycle 1 or later.
+        Long runs hold them as :class:`Cycles` (one array; reads like the tuple).
+    rate_changes : tuple of RateChange, or RateChanges
+        Sorted by cycle; each at cycle 1 or later. Long runs hold them as
+        :class:`RateChanges` (three arrays; reads like the tuple).
     arm_changes : tuple of (int, bool)
         ``arm`` input level from that cycle on; the input is low at reset.
     fault_changes : tuple of FaultChange
@@ -121,8 +261,8 @@ class Stimulus:
     """
 
     cycles: int
-    strobe_edges: tuple[int, ...] = ()
-    rate_changes: tuple[RateChange, ...] = ()
+    strobe_edges: tuple[int, ...] | Cycles = ()
+    rate_changes: tuple[RateChange, ...] | RateChanges = ()
     arm_changes: tuple[tuple[int, bool], ...] = ((0, True),)
     fault_changes: tuple[FaultChange, ...] = ()
     ignore_windows: tuple[tuple[int, int], ...] = ()
@@ -131,12 +271,23 @@ class Stimulus:
         if self.cycles < 1:
             raise ValueError(f"cycles must be at least 1, not {self.cycles}")
         edges = self.strobe_edges
-        if any(b <= a for a, b in pairwise(edges)):
+        # The compact forms are checked on their arrays (the same rules, without a Python object per entry).
+        if isinstance(edges, Cycles):
+            rising = bool(np.all(np.diff(edges.array) > 0))
+        else:
+            rising = not any(b <= a for a, b in pairwise(edges))
+        if not rising:
             raise ValueError("strobe_edges must be strictly increasing")
-        if edges and edges[0] < 0:
+        if len(edges) and edges[0] < 0:
             raise ValueError(f"strobe edge at cycle {edges[0]}: cycles start at 0")
-        cyc = [c.cycle for c in self.rate_changes]
-        if cyc != sorted(cyc):
+        changes = self.rate_changes
+        if isinstance(changes, RateChanges):
+            ordered = bool(np.all(np.diff(changes.cycle) >= 0))
+            cyc: Sequence[int] = changes.cycle[:1].tolist()
+        else:
+            cyc = [c.cycle for c in changes]
+            ordered = cyc == sorted(cyc)
+        if not ordered:
             raise ValueError("rate_changes must be sorted by cycle")
         if cyc and cyc[0] < 1:
             raise ValueError(f"rate change at cycle {cyc[0]}: changes start at cycle 1")
