@@ -11,10 +11,11 @@ so Python runs little per cycle beyond the simulator's own work.
 
 from __future__ import annotations
 
-from collections import defaultdict
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 from amaranth.hdl import Module, Signal, Value
 from amaranth.lib import wiring
 from amaranth.sim import Simulator
@@ -22,9 +23,10 @@ from amaranth.sim import Simulator
 from dvgate.gateware.faults import pack_faults
 from dvgate.gateware.top import Emulator
 from dvgate.params import IGNORE_CYCLES_BITS, HardwareParams
-from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RunResult, Status, Stimulus
+from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RateChange, RateChanges, RunResult, Status, Stimulus
 
-__all__ = ["edges_from_levels", "input_plan", "run_amaranth", "run_cycles"]
+__all__ = ["PLAN_PORTS", "InputWrites", "edges_from_levels", "input_plan", "input_writes", "run_amaranth",
+           "run_cycles"]
 
 
 def _clock_fs(params: HardwareParams) -> int:
@@ -37,6 +39,36 @@ def _seconds(fs: int) -> float:
     return (fs + 0.5) / 1e15
 
 
+#: The input ports a plan sets, in the order :attr:`InputWrites.port` numbers them.
+PLAN_PORTS = ("strobe", "arm", "rate_we", "rate_commit", "rate_addr", "rate_data", "fault_we", "fault_addr",
+              "fault_data", "ignore_we", "ignore_cycles")
+_PORT = {name: index for index, name in enumerate(PLAN_PORTS)}
+#: Entries of the plan: (cycles, port number, value or values), applied in list order.
+_Entries = list[tuple[np.ndarray, int, np.ndarray | int]]
+
+
+@dataclass(frozen=True, eq=False)
+class InputWrites:
+    """The input plan as arrays: port ``PLAN_PORTS[port[i]]`` takes ``value[i]`` from ``cycle[i]`` on.
+
+    One entry per cycle and port, sorted by cycle and then by port number (the order of
+    :data:`PLAN_PORTS`).
+
+    Attributes
+    ----------
+    cycle : ndarray of int64
+    port : ndarray of int8
+    value : ndarray of int64 (of Python ints when the rate register is wider than 64 bits)
+    """
+
+    cycle: np.ndarray
+    port: np.ndarray
+    value: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.cycle)
+
+
 def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, int]]:
     """Input port values to set at each cycle, for the cycles where something changes.
 
@@ -47,6 +79,7 @@ def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, in
     ignore window ``(c, L)`` through ``ignore_we``/``ignore_cycles`` at ``c - 1``. The
     fault and ignore ports appear in the plan only when the stimulus uses them (they are
     0 at reset); ``fault_data`` is the packed :class:`~dvgate.gateware.faults.FaultLayout`.
+    The same plan as :func:`input_writes` (which computes it), as dictionaries.
 
     Parameters
     ----------
@@ -68,62 +101,145 @@ def input_plan(params: HardwareParams, stim: Stimulus) -> dict[int, dict[str, in
         the rate changes are packed too tightly to write them through the port, or two
         fault changes (or two ignore windows) need their port at the same cycle.
     """
+    writes = input_writes(params, stim)
+    plan: dict[int, dict[str, int]] = {}
+    for cycle, port, value in zip(writes.cycle.tolist(), writes.port.tolist(), writes.value.tolist(), strict=True):
+        plan.setdefault(cycle, {})[PLAN_PORTS[port]] = value
+    return plan
+
+
+def input_writes(params: HardwareParams, stim: Stimulus, *, strobe: bool = True) -> InputWrites:
+    """The plan of :func:`input_plan` as arrays, without a Python object per write.
+
+    For long runs (the compiled engine writes its stimulus records from it): the rate
+    changes are grouped and placed on the port with array operations, so a program of
+    millions of changes costs a few arrays. Rules, checks and messages: :func:`input_plan`.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator.
+    stim : Stimulus
+        The run.
+    strobe : bool
+        Include the strobe pin's edges (``False``: only its idle level at cycle 0, for a
+        caller that writes the edges itself).
+
+    Raises
+    ------
+    ValueError
+        As :func:`input_plan`.
+    """
     n_cyc = stim.cycles
-    plan: dict[int, dict[str, int]] = defaultdict(dict)
+    # Entries in the order the plan applies them: at one cycle and port the last one
+    # holds; a default (the port's idle value the cycle after a write) only where
+    # nothing else sets that port at that cycle.
+    sets: _Entries = []
+    defaults: _Entries = []
     idle = 0 if params.edge_rising else 1
-    plan[0].update({"strobe": idle, "arm": 0, "rate_we": 0, "rate_commit": 0})
+    at_reset = np.zeros(1, np.int64)
+    sets += [(at_reset, _PORT["strobe"], idle), (at_reset, _PORT["arm"], 0), (at_reset, _PORT["rate_we"], 0),
+             (at_reset, _PORT["rate_commit"], 0)]
+    if strobe:
+        edges = np.asarray(stim.strobe_edges, dtype=np.int64)
+        edges = edges[edges < n_cyc]
+        sets.append((edges, _PORT["strobe"], idle ^ ((np.arange(len(edges), dtype=np.int64) + 1) & 1)))
+    arm = [(max(cycle, 0), int(bool(level))) for cycle, level in stim.arm_changes if cycle < n_cyc]
+    if arm:
+        sets.append((np.array([c for c, _ in arm], np.int64), _PORT["arm"], np.array([v for _, v in arm], np.int64)))
+    _plan_rates(params, stim, sets, defaults)
+    _plan_faults(params, stim, sets, defaults)
+    _plan_ignores(stim, sets, defaults)
 
-    level = idle
-    for edge in stim.strobe_edges:
-        if edge >= n_cyc:
-            break
-        level ^= 1
-        plan[edge]["strobe"] = level
-
-    for cycle, arm in stim.arm_changes:
-        if cycle < n_cyc:
-            plan[max(cycle, 0)]["arm"] = int(bool(arm))
-
-    groups: dict[int, dict[int, int]] = {}
-    for change in stim.rate_changes:
-        if not 0 <= change.channel < params.n:
-            raise ValueError(f"rate change at cycle {change.cycle}: channel is {change.channel}, "
-                             f"allowed 0 to {params.n - 1}")
-        if not params.rate_min <= change.rate <= params.rate_max:
-            raise ValueError(f"rate change at cycle {change.cycle}: rate is {change.rate}, allowed "
-                             f"{params.rate_min} to {params.rate_max} ({params.rate_bits} bits)")
-        groups.setdefault(change.cycle, {})[change.channel] = change.rate
-
-    free = 0  # first cycle the port may write for the next group
-    for cycle, rates in groups.items():
-        first = cycle - len(rates)
-        if first < free:
-            busy = ("cycle 0 comes first" if free == 0 else
-                    f"the commit of the changes at cycle {free} takes cycle {free - 1}")
-            raise ValueError(
-                f"rate changes at cycle {cycle}: {len(rates)} channel(s) need the write cycles "
-                f"{first} to {cycle - 1} of the rate port, but {busy}; "
-                f"space the changes at least one cycle per channel apart")
-        for j, (channel, rate) in enumerate(rates.items()):
-            plan[first + j].update({
-                "rate_addr": channel,
-                "rate_data": rate,
-                "rate_we": 1,
-                "rate_commit": int(j == len(rates) - 1),
-            })
-        after = plan[cycle]
-        after.setdefault("rate_we", 0)
-        after.setdefault("rate_commit", 0)
-        free = cycle
-
-    _plan_faults(params, stim, plan)
-    _plan_ignores(stim, plan)
-    return {c: plan[c] for c in sorted(plan) if c < n_cyc}
+    # Resolve on one packed key per entry (cycle, then port: 16 ports at most), sorted
+    # stably so the entry applied last comes last; cycles past the run are dropped first
+    # (so the key cannot overflow).
+    if n_cyc >= 1 << 58:
+        raise ValueError(f"a run of {n_cyc} cycles is longer than the plan can number (2**58)")
+    wide = params.rate_bits > 64  # rates as Python ints then
+    parts = [(np.asarray(c, np.int64), p, v) for c, p, v in [*defaults, *sets]]
+    inside = [c < n_cyc for c, _, _ in parts]
+    key = np.concatenate([c[m] * 16 + p for (c, p, _), m in zip(parts, inside, strict=True)])
+    value = np.concatenate([np.broadcast_to(np.asarray(v, dtype=object if wide else np.int64), c.shape)[m]
+                            for (c, _, v), m in zip(parts, inside, strict=True)])
+    del parts, inside
+    order = np.argsort(key, kind="stable")
+    key = key[order]
+    last = np.ones(len(key), dtype=bool)
+    np.not_equal(key[1:], key[:-1], out=last[:-1])
+    return InputWrites(key[last] >> 4, (key[last] & 15).astype(np.int8), value[order[last]])
 
 
-def _plan_faults(params: HardwareParams, stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
+def _check_rate_change(params: HardwareParams, change: RateChange) -> None:
+    if not 0 <= change.channel < params.n:
+        raise ValueError(f"rate change at cycle {change.cycle}: channel is {change.channel}, "
+                         f"allowed 0 to {params.n - 1}")
+    if not params.rate_min <= change.rate <= params.rate_max:
+        raise ValueError(f"rate change at cycle {change.cycle}: rate is {change.rate}, allowed "
+                         f"{params.rate_min} to {params.rate_max} ({params.rate_bits} bits)")
+
+
+def _plan_rates(params: HardwareParams, stim: Stimulus, sets: _Entries, defaults: _Entries) -> None:
+    """Rate changes: each cycle's group written on the cycles before it, the commit on the last."""
+    changes = stim.rate_changes
+    if not len(changes):
+        return
+    if isinstance(changes, RateChanges):
+        bad = ((changes.channel < 0) | (changes.channel >= params.n) | (changes.rate < params.rate_min)
+               | (changes.rate > params.rate_max))
+        if bad.any():
+            _check_rate_change(params, changes[int(np.argmax(bad))])
+        cyc, ch = changes.cycle, changes.channel
+        rate: np.ndarray = changes.rate
+    else:
+        for change in changes:  # before any array: a value may not fit one
+            _check_rate_change(params, change)
+        n = len(changes)
+        cyc = np.fromiter((c.cycle for c in changes), np.int64, n)
+        ch = np.fromiter((c.channel for c in changes), np.int64, n)
+        rate = np.array([c.rate for c in changes], dtype=object if params.rate_bits > 64 else np.int64)
+    # One write per channel and cycle: the channel's place is its first change there,
+    # its value the last one (the changes are sorted by cycle, so groups stay in order).
+    index = np.arange(len(cyc))
+    order = np.lexsort((index, ch, cyc))
+    same = (cyc[order][1:] == cyc[order][:-1]) & (ch[order][1:] == ch[order][:-1])
+    first = order[np.flatnonzero(np.concatenate(([True], ~same)))]
+    final = order[np.flatnonzero(np.concatenate((~same, [True])))]
+    place = np.argsort(first, kind="stable")
+    first, final = first[place], final[place]
+    del order, same, place, index
+    at_cycle, channel, value = cyc[first], ch[first], rate[final]
+    starts = np.flatnonzero(np.concatenate(([True], at_cycle[1:] != at_cycle[:-1])))
+    size = np.diff(np.append(starts, len(at_cycle)))
+    group = at_cycle[starts]
+    # The port writes a group at c - m .. c - 1, after the previous group's commit (at its c - 1).
+    begin = group - size
+    free = np.concatenate(([0], group[:-1]))
+    tight = begin < free
+    if tight.any():
+        k = int(np.argmax(tight))
+        cycle, m, lo, busy_at = int(group[k]), int(size[k]), int(begin[k]), int(free[k])
+        busy = ("cycle 0 comes first" if busy_at == 0 else
+                f"the commit of the changes at cycle {busy_at} takes cycle {busy_at - 1}")
+        raise ValueError(
+            f"rate changes at cycle {cycle}: {m} channel(s) need the write cycles "
+            f"{lo} to {cycle - 1} of the rate port, but {busy}; "
+            f"space the changes at least one cycle per channel apart")
+    j = np.arange(len(at_cycle)) - np.repeat(starts, size)
+    m_each = np.repeat(size, size)
+    write = at_cycle - m_each + j
+    sets.append((write, _PORT["rate_addr"], channel))
+    sets.append((write, _PORT["rate_data"], value))
+    sets.append((write, _PORT["rate_we"], 1))
+    sets.append((write, _PORT["rate_commit"], (j == m_each - 1).astype(np.int64)))
+    defaults.append((group, _PORT["rate_we"], 0))
+    defaults.append((group, _PORT["rate_commit"], 0))
+
+
+def _plan_faults(params: HardwareParams, stim: Stimulus, sets: _Entries, defaults: _Entries) -> None:
     """Fault changes: each written through the fault port on the cycle before it holds."""
     written: dict[int, int] = {}  # cycle of the write -> channel
+    rows = []
     for change in stim.fault_changes:
         if not 0 <= change.channel < params.n:
             raise ValueError(f"fault change at cycle {change.cycle}: channel is {change.channel}, "
@@ -137,13 +253,19 @@ def _plan_faults(params: HardwareParams, stim: Stimulus, plan: dict[int, dict[st
                 f"the fault port at cycle {at}; a fault set written at c - 1 holds from c, so changes of "
                 "different channels must fall on different cycles")
         written[at] = change.channel
-        plan[at].update({"fault_addr": change.channel, "fault_data": pack_faults(change.faults), "fault_we": 1})
-        plan[change.cycle].setdefault("fault_we", 0)
+        rows.append((at, change.channel, pack_faults(change.faults), change.cycle))
+    if rows:
+        at = np.array([r[0] for r in rows], np.int64)
+        sets.append((at, _PORT["fault_addr"], np.array([r[1] for r in rows], np.int64)))
+        sets.append((at, _PORT["fault_data"], np.array([r[2] for r in rows], np.int64)))
+        sets.append((at, _PORT["fault_we"], 1))
+        defaults.append((np.array([r[3] for r in rows], np.int64), _PORT["fault_we"], 0))
 
 
-def _plan_ignores(stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
+def _plan_ignores(stim: Stimulus, sets: _Entries, defaults: _Entries) -> None:
     """Ignore windows: each written through ``ignore_we``/``ignore_cycles`` on the cycle before it starts."""
     limit = (1 << IGNORE_CYCLES_BITS) - 1
+    rows = []
     for cycle, length in stim.ignore_windows:
         if length > limit:
             raise ValueError(f"ignore window at cycle {cycle}: length is {length}, allowed 1 to {limit} "
@@ -151,8 +273,12 @@ def _plan_ignores(stim: Stimulus, plan: dict[int, dict[str, int]]) -> None:
         if cycle > stim.cycles:
             continue
         # Stimulus keeps windows strictly increasing in cycle, so two never share a write cycle.
-        plan[cycle - 1].update({"ignore_we": 1, "ignore_cycles": length})
-        plan[cycle].setdefault("ignore_we", 0)
+        rows.append((cycle, length))
+    if rows:
+        start = np.array([c for c, _ in rows], np.int64)
+        sets.append((start - 1, _PORT["ignore_we"], 1))
+        sets.append((start - 1, _PORT["ignore_cycles"], np.array([n for _, n in rows], np.int64)))
+        defaults.append((start, _PORT["ignore_we"], 0))
 
 
 def edges_from_levels(changes: list[tuple[int, tuple[int, ...]]], n_lines: int,

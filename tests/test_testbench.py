@@ -239,3 +239,94 @@ def test_emulator_refuses_bad_channel_names(names, match: str) -> None:
     p = dataclasses.replace(params(), names=names, init_rates=())
     with pytest.raises(ValueError, match=match):
         Emulator(p)
+
+
+def _plan_by_hand(p: HardwareParams, stim: Stimulus) -> dict[int, dict[str, int]]:
+    """The plan's rules (docs/timing.md, "Cycles and stimulus"; input_plan's docstring), cycle by cycle.
+
+    Independent of input_writes: dictionaries updated in the order the rules apply.
+    """
+    plan: dict[int, dict[str, int]] = {0: {"strobe": 0 if p.edge_rising else 1, "arm": 0, "rate_we": 0,
+                                           "rate_commit": 0}}
+    level = plan[0]["strobe"]
+    for edge in stim.strobe_edges:
+        if edge < stim.cycles:
+            level ^= 1
+            plan.setdefault(edge, {})["strobe"] = level
+    for cycle, arm in stim.arm_changes:
+        if cycle < stim.cycles:
+            plan.setdefault(cycle, {})["arm"] = int(arm)
+    groups: dict[int, dict[int, int]] = {}
+    for change in stim.rate_changes:
+        groups.setdefault(change.cycle, {})[change.channel] = change.rate
+    for cycle, rates in groups.items():
+        for j, (channel, rate) in enumerate(rates.items()):
+            plan.setdefault(cycle - len(rates) + j, {}).update(
+                rate_addr=channel, rate_data=rate, rate_we=1, rate_commit=int(j == len(rates) - 1))
+        plan.setdefault(cycle, {}).setdefault("rate_we", 0)
+        plan[cycle].setdefault("rate_commit", 0)
+    return {c: plan[c] for c in sorted(plan) if c < stim.cycles}
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_input_plan_of_the_compact_forms_is_the_same(seed: int) -> None:
+    # Long runs hold their strobe edges and rate changes as arrays (Cycles, RateChanges);
+    # the plan is the same as from the tuples, and as the rules worked out by hand.
+    import random
+
+    from dvgate.sim.trace import Cycles, RateChanges
+
+    rng = random.Random(seed)
+    p = params(edge_rising=bool(seed % 2))
+    changes, cycle = [], 0
+    while len(changes) < 300:
+        cycle += rng.choice([4, 4, 5, 9, 30])
+        for channel in rng.sample(range(3), rng.randint(1, 3)):
+            changes.append(RateChange(cycle, channel, rng.randint(-500, 500)))
+        if rng.random() < 0.2:  # a second change of one channel at the same cycle replaces the first
+            changes.append(RateChange(cycle, changes[-1].channel, rng.randint(-500, 500)))
+    edges = sorted(rng.sample(range(cycle + 50), 400))
+    n_cyc = cycle - rng.randint(0, 40)  # the last changes may fall beyond the run
+    tuples = Stimulus(cycles=n_cyc, strobe_edges=tuple(edges), rate_changes=tuple(changes),
+                      arm_changes=((0, True), (n_cyc // 2, False)))
+    compact = dataclasses.replace(tuples, strobe_edges=Cycles(edges), rate_changes=RateChanges.of(tuple(changes)))
+    assert compact == tuples
+    plan = input_plan(p, tuples)
+    assert plan == _plan_by_hand(p, tuples)
+    assert input_plan(p, compact) == plan
+    assert list(input_plan(p, compact)) == sorted(plan)
+
+
+def test_input_writes_are_the_plan_as_arrays() -> None:
+    from dvgate.sim.testbench import PLAN_PORTS, input_writes
+
+    p = params()
+    stim = Stimulus(cycles=20, strobe_edges=(0, 4), rate_changes=(
+        RateChange(10, 2, 5), RateChange(10, 0, -7), RateChange(10, 2, 6), RateChange(11, 1, 9)))
+    writes = input_writes(p, stim)
+    rows = [(c, PLAN_PORTS[k], v) for c, k, v in zip(writes.cycle.tolist(), writes.port.tolist(),
+                                                      writes.value.tolist(), strict=True)]
+    # One entry per cycle and port, in cycle order, then port order; the edge at 0 replaces the idle level.
+    assert rows == [(0, "strobe", 1), (0, "arm", 1), (0, "rate_we", 0), (0, "rate_commit", 0), (4, "strobe", 0),
+                    (8, "rate_we", 1), (8, "rate_commit", 0), (8, "rate_addr", 2), (8, "rate_data", 6),
+                    (9, "rate_we", 1), (9, "rate_commit", 1), (9, "rate_addr", 0), (9, "rate_data", -7),
+                    (10, "rate_we", 1), (10, "rate_commit", 1), (10, "rate_addr", 1), (10, "rate_data", 9),
+                    (11, "rate_we", 0), (11, "rate_commit", 0)]
+    assert [c for c, *_ in rows if _[0] == "strobe"] == [0, 4]
+    assert len(input_writes(p, stim, strobe=False).cycle) == len(rows) - 1  # only the idle level at 0
+
+
+@pytest.mark.parametrize(("changes", "match"), [
+    (((1, 0, 5), (1, 1, 5)), "rate changes at cycle 1.*cycle 0 comes first"),
+    (((10, 0, 5), (11, 1, 5), (11, 2, 5)),
+     "rate changes at cycle 11.*write cycles 9 to 10.*commit of the changes at cycle 10"),
+    (((5, 0, 1), (6, 3, 5)), "rate change at cycle 6: channel is 3, allowed 0 to 2"),
+    (((5, 0, 1 << 15),), "rate change at cycle 5: rate is 32768, allowed -32768 to 32767"),
+])
+def test_compact_rate_changes_are_refused_with_the_same_messages(changes, match: str) -> None:
+    from dvgate.sim.trace import RateChanges
+
+    cycles, channels, rates = zip(*changes, strict=True)
+    stim = Stimulus(cycles=20, rate_changes=RateChanges(cycles, channels, rates))
+    with pytest.raises(ValueError, match=match):
+        input_plan(params(), stim)
