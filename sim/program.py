@@ -21,7 +21,7 @@ Config, ``[program]`` section::
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -32,7 +32,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from dvgate.config import Config, Duration, section
 from dvgate.errors import UserError
 from dvgate.sim.profile import Profile
-from dvgate.sim.trace import RateChange
+from dvgate.sim.trace import RateChanges
 from dvgate.units import STANDARD_GRAVITY
 
 #: Version of the saved program format (``.npz``).
@@ -133,11 +133,7 @@ class Program:
             raise ValueError("a program has at least one segment, each at least one tick long")
         object.__setattr__(self, "ticks", ticks)
         object.__setattr__(self, "rates", rates)
-        # Exact running integral at each segment start (Python integers: no overflow).
-        steps = rates.astype(object) * ticks.astype(object)[:, None]
-        sums = np.zeros((len(ticks) + 1, len(self.names)), dtype=object)
-        sums[1:] = np.cumsum(steps, axis=0)
-        object.__setattr__(self, "_sums", sums)
+        object.__setattr__(self, "_sums", _running_sums(ticks, rates))
 
     @property
     def n(self) -> int:
@@ -175,8 +171,11 @@ class Program:
         seg = np.searchsorted(starts, t, side="right") - 1
         past = seg >= len(self.ticks)
         seg_c = np.minimum(seg, len(self.ticks) - 1)
-        into = (t - starts[seg_c]).astype(object)
-        out = self._sums[seg_c] + self.rates[seg_c].astype(object) * into[:, None]
+        into = t - starts[seg_c]
+        if self._sums.dtype == object:
+            out = self._sums[seg_c] + self.rates[seg_c].astype(object) * into.astype(object)[:, None]
+        else:  # within the bound _running_sums checked: exact in int64
+            out = (self._sums[seg_c] + self.rates[seg_c] * into[:, None]).astype(object)
         if np.any(past):
             out[past] = self._sums[-1]
         return out
@@ -190,24 +189,44 @@ class Program:
         """The program's integral in SI units (m/s or rad), shape (k, channels)."""
         return self.pulses(ticks) * np.asarray(self.weights)
 
-    def rate_changes(self, origin: int, initial: tuple[int, ...] | None = None) -> tuple[RateChange, ...]:
+    def rate_changes(self, origin: int, initial: tuple[int, ...] | None = None) -> RateChanges:
         """The program as the model's rate changes: tick ``t`` is cycle ``origin + t``.
 
         A change is listed only where a channel's rate differs from the one before it
         (``initial``, the rates at reset, for the first segment); after the last
-        segment every channel returns to zero.
+        segment every channel returns to zero. In order of cycle, then channel.
+
+        Returns
+        -------
+        RateChanges
+            Read as a tuple of :class:`~dvgate.sim.trace.RateChange` (and equal to one),
+            held as arrays: a long program has millions of changes.
         """
         if origin < 1:
             raise ValueError("rate changes start at cycle 1")
-        prev = np.asarray(initial if initial is not None else (None,) * self.n, dtype=object)
         rows = np.vstack([self.rates, np.zeros((1, self.n), dtype=np.int64)])
-        cycles = (origin + self.starts).tolist()
-        out: list[RateChange] = []
-        before = rows[:-1]
-        changed = np.vstack([rows[0] != prev, rows[1:] != before]) if self.n else np.zeros((0, 0), bool)
-        for j, ch in zip(*np.nonzero(changed), strict=True):
-            out.append(RateChange(cycles[j], int(ch), int(rows[j, ch])))
-        return tuple(out)
+        changed = np.empty(rows.shape, dtype=bool)
+        changed[0] = True if initial is None else rows[0] != np.asarray(initial, dtype=object)
+        np.not_equal(rows[1:], rows[:-1], out=changed[1:])
+        segment, channel = np.nonzero(changed)  # row by row: by cycle, then channel
+        return RateChanges(origin + self.starts[segment], channel, rows[segment, channel])
+
+
+def _running_sums(ticks: np.ndarray, rates: np.ndarray) -> np.ndarray:
+    """Exact running integral at each segment start, shape (m + 1, channels).
+
+    In int64 when no partial sum can reach 2**62 (bounded by the largest rate times the
+    whole length), else in Python integers (an object array, as large programs of wide
+    rates need; a Python integer per entry costs several times the memory).
+    """
+    sums = np.zeros((len(ticks) + 1, rates.shape[1]), dtype=np.int64)
+    bound = float(np.abs(rates).max(initial=0)) * float(ticks.sum())
+    if bound < 2.0**62:
+        np.cumsum(rates * ticks[:, None], axis=0, out=sums[1:])
+        return sums
+    sums = sums.astype(object)
+    sums[1:] = np.cumsum(rates.astype(object) * ticks.astype(object)[:, None], axis=0)
+    return sums
 
 
 def _limit_message(profile: Profile, config: Config, ch: int, index: int) -> str:
@@ -282,12 +301,15 @@ def make_program(profile: Profile, config: Config, settings: ProgramSettings | N
     bounds = np.minimum(bounds, profile.stop)
     # Each segment's integral in fixed-point units (LSB x ticks): SI integral / weight x 2**F.
     scale = np.array([math.ldexp(1.0 / c.weight, hw.frac_bits) for c in config.channels])
-    wanted = source.interval_integrals(bounds) * scale
-    rates, errors = _quantize(wanted, lengths)
+
+    def wanted(a: int, b: int) -> np.ndarray:
+        """Segments ``a .. b - 1``: each integral comes from its own bounds alone, so in pieces it is the same."""
+        return source.interval_integrals(bounds[a:b + 1]) * scale
+
+    rates, worst = _quantize(wanted, lengths)
     clips = 0
     if np.any(rates < hw.rate_min) or np.any(rates > hw.rate_max):
-        rates, errors, clips = _quantize_clipped(wanted, lengths, hw.rate_min, hw.rate_max)
-    worst = float(np.max(np.abs(errors) / lengths[:, None])) if len(errors) else 0.0
+        rates, worst, clips = _quantize_clipped_all(wanted, lengths, hw.rate_min, hw.rate_max)
     # Merge neighbours with equal rates on every channel: fewer changes, same integral.
     keep = np.concatenate(([True], np.any(rates[1:] != rates[:-1], axis=1)))
     starts = np.flatnonzero(keep)
@@ -296,36 +318,76 @@ def make_program(profile: Profile, config: Config, settings: ProgramSettings | N
                    tuple(c.weight for c in config.channels), seg, profile.start, worst, clipped, clips)
 
 
-def _quantize(wanted: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Rates with the residual carried, and the residual after each segment (LSB x ticks).
+#: Segments quantized at a time: a long profile's working arrays stay small.
+SEGMENT_CHUNK = 1 << 16
+
+
+def _quantize(wanted: Callable[[int, int], np.ndarray], lengths: np.ndarray,
+              chunk: int | None = None) -> tuple[np.ndarray, float]:
+    """Rates with the residual carried, and the largest residual (LSB x segment ticks).
 
     For segments of equal length ``n``, carrying the residual gives
     ``rate_j = round(S_{j+1} / n) - round(S_j / n)`` with ``S_j`` the wanted integral up
     to segment ``j``; ``S_j / n`` is split into an integer part (summed exactly) and a
     fraction part (summed in floats, small), so no precision is lost on long runs.
+    ``wanted(a, b)`` gives the wanted integrals of segments ``a .. b - 1``; they are
+    taken ``chunk`` segments at a time, the running sum carried from one to the next
+    (the same additions in the same order as one sum over all).
     """
+    chunk = chunk or SEGMENT_CHUNK
+    count = len(lengths)
     n = int(lengths[0])
-    full = len(lengths) - 1 if lengths[-1] != n else len(lengths)
-    x = wanted[:full] / n
-    whole = np.floor(x)
-    frac = x - whole
-    run = np.vstack([np.zeros((1, x.shape[1])), np.cumsum(frac, axis=0)])
-    rounded = np.rint(run)
-    rates = np.empty(wanted.shape, dtype=np.int64)
-    rates[:full] = whole.astype(np.int64) + (rounded[1:] - rounded[:-1]).astype(np.int64)
-    errors = np.empty(wanted.shape)
-    errors[:full] = (run[1:] - rounded[1:]) * n
-    if full < len(lengths):
-        residual = (run[-1] - rounded[-1]) * n
-        last = int(lengths[-1])
-        rates[-1] = np.rint((residual + wanted[-1]) / last).astype(np.int64)
-        errors[-1] = residual + wanted[-1] - rates[-1] * last
-    return rates, errors
+    full = count - 1 if lengths[-1] != n else count
+    rates: np.ndarray | None = None
+    run = rounded = None  # the running fraction sum and its rounding before the chunk
+    worst = np.float64(0.0)
+    for a in range(0, count, chunk):
+        b = min(a + chunk, count)
+        want = wanted(a, b)
+        if rates is None:
+            rates = np.empty((count, want.shape[1]), dtype=np.int64)
+            run = rounded = np.zeros(want.shape[1])
+        if min(b, full) > a:
+            x = want[:min(b, full) - a] / n
+            whole = np.floor(x)
+            frac = x - whole
+            sums = np.cumsum(np.vstack([run, frac]), axis=0)  # row 0: the sum carried in
+            near = np.rint(sums)
+            rates[a:a + len(x)] = whole.astype(np.int64) + (near[1:] - near[:-1]).astype(np.int64)
+            worst = np.max([worst, np.max(np.abs((sums[1:] - near[1:]) * n) / n)])
+            run, rounded = sums[-1], near[-1]
+        if b == count and full < count:
+            residual = (run - rounded) * n
+            last = int(lengths[-1])
+            rates[-1] = np.rint((residual + want[-1]) / last).astype(np.int64)
+            worst = np.max([worst, np.max(np.abs(residual + want[-1] - rates[-1] * last) / last)])
+    assert rates is not None
+    return rates, float(worst)
 
 
-def _quantize_clipped(wanted: np.ndarray, lengths: np.ndarray, lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, int]:
-    """The same recursion one segment at a time, clipping to the rate register."""
-    residual = np.zeros(wanted.shape[1])
+def _quantize_clipped_all(wanted: Callable[[int, int], np.ndarray], lengths: np.ndarray, lo: int, hi: int,
+                          chunk: int | None = None) -> tuple[np.ndarray, float, int]:
+    """:func:`_quantize_clipped` over every segment, ``chunk`` at a time: rates, largest residual, clips."""
+    chunk = chunk or SEGMENT_CHUNK
+    parts, worst, clips, residual = [], np.float64(0.0), 0, None
+    for a in range(0, len(lengths), chunk):
+        b = min(a + chunk, len(lengths))
+        rates, errors, n_clips = _quantize_clipped(wanted(a, b), lengths[a:b], lo, hi, residual)
+        parts.append(rates)
+        worst = np.max([worst, np.max(np.abs(errors) / lengths[a:b, None])])
+        clips += n_clips
+        residual = errors[-1]
+    return np.concatenate(parts), float(worst), clips
+
+
+def _quantize_clipped(wanted: np.ndarray, lengths: np.ndarray, lo: int, hi: int,
+                      residual: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, int]:
+    """The same recursion one segment at a time, clipping to the rate register.
+
+    ``residual``: what earlier segments left (none by default); the last row of the
+    errors returned is what these leave.
+    """
+    residual = np.zeros(wanted.shape[1]) if residual is None else residual
     rates = np.empty(wanted.shape, dtype=np.int64)
     errors = np.empty(wanted.shape)
     clips = 0

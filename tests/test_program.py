@@ -201,3 +201,68 @@ def test_program_section_is_checked():
     profile, _, _ = sine_profile(0.01, 1e-3)
     with pytest.raises(UserError, match=r"program\.segment = '10 ns'"):
         make_program(profile, fast_config(program={"segment": "10 ns"}))
+
+
+@pytest.mark.parametrize("chunk", [1, 3, 1000])
+def test_program_made_in_chunks_is_the_same(monkeypatch, chunk):
+    # A long profile is converted a chunk of segments at a time (bounded memory); the
+    # running sums are carried, so the rates and the worst error are the same bits.
+    from dvgate.sim import program as module
+
+    profile, _, _ = sine_profile(2.0, 1e-3, amp=40.0, omega=7.0, offset=3.0)
+    cfg = fast_config(clock="12 MHz", program={"segment": "0.7 ms"})  # the last segment is short
+    whole = make_program(profile, cfg)
+    monkeypatch.setattr(module, "SEGMENT_CHUNK", chunk)
+    parts = make_program(profile, cfg)
+    assert np.array_equal(parts.ticks, whole.ticks) and np.array_equal(parts.rates, whole.rates)
+    assert parts.worst_error == whole.worst_error and parts.register_clips == whole.register_clips == 0
+
+
+@pytest.mark.parametrize("chunk", [1, 2, 5])
+def test_clipped_quantizer_in_chunks_carries_the_residual(chunk):
+    from dvgate.sim.program import _quantize_clipped_all
+
+    rng = np.random.default_rng(3)
+    lengths = np.array([10] * 11 + [4])
+    wanted = rng.normal(0.0, 300.0, (12, 2))
+    rates, errors, clips = _quantize_clipped(wanted, lengths, -20, 20)
+    got, worst, got_clips = _quantize_clipped_all(lambda a, b: wanted[a:b], lengths, -20, 20, chunk)
+    assert clips > 0 and got_clips == clips
+    assert np.array_equal(got, rates)
+    assert worst == float(np.max(np.abs(errors) / lengths[:, None]))
+
+
+@pytest.mark.parametrize("rate", [3, 1 << 40])
+def test_integral_is_exact_in_python_integers(rate):
+    # Small products are summed in int64, large ones (2**40 x 2**30 ticks overflows
+    # int64) in Python integers: either way every value is the exact sum.
+    from dvgate.sim.program import Program
+
+    ticks = [1 << 30, 7, 1 << 30, 5]
+    rates = [[rate, -rate], [1 - rate, rate], [rate, 2], [0, -rate]]
+    program = Program(np.array(ticks), np.array(rates), ("x", "y"), 36, 12e6, (0.01, 0.01), 1 << 30)
+    at = [0, 1, 1 << 30, (1 << 30) + 3, (1 << 31) + 7, (1 << 31) + 12, (1 << 31) + 20]
+    got = program.integral(at)
+    for row, t in enumerate(at):
+        for ch in range(2):
+            want, left = 0, t
+            for n, r in zip(ticks, rates, strict=True):
+                want += r[ch] * min(n, max(left, 0))
+                left -= n
+            assert got[row, ch] == want and type(got[row, ch]) is int
+
+
+def test_rate_changes_are_arrays_that_read_as_records():
+    from dvgate.sim.trace import RateChange, RateChanges
+
+    cfg = fast_config()
+    t = np.array([0.0, 0.002, 0.002, 0.004])
+    x = np.array([cfg.fixed_to_rate(0, 4_000_000)] * 2 + [cfg.fixed_to_rate(0, 9_000_000)] * 2)
+    program = make_program(Profile(t, np.column_stack([x, x / 2, 0 * x]), NAMES, UNITS), cfg)
+    changes = program.rate_changes(5)  # no initial rates: every channel is written first
+    assert isinstance(changes, RateChanges)
+    want = (RateChange(5, 0, 4_000_000), RateChange(5, 1, 2_000_000), RateChange(5, 2, 0),
+            RateChange(2005, 0, 9_000_000), RateChange(2005, 1, 4_500_000),
+            RateChange(4005, 0, 0), RateChange(4005, 1, 0))
+    assert changes == want and tuple(changes) == want and changes[3] == want[3] and changes[-2:] == want[-2:]
+    assert changes.cycle.tolist() == [c.cycle for c in want]
