@@ -54,7 +54,7 @@ import subprocess
 import sys
 import tempfile
 import threading
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import cache, cached_property
@@ -1016,6 +1016,82 @@ def _build(params: HardwareParams) -> _Build:
 # Running
 
 
+#: Records the stimulus file is written in at a time (about; bounds the memory of writing it).
+RECORD_BLOCK = 1 << 18
+
+
+def _record_sources(params: HardwareParams, stim: Stimulus, samples: Sequence[int],
+                    window: tuple[int, int] | None) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """The records' parts ``(cycle, kind, value)``, each sorted by cycle, in the order a cycle lists them.
+
+    The port plan of everything but the pin (:func:`~dvgate.sim.testbench.input_writes`,
+    exactly as the Python testbench makes it), the pin's edges, the samples, the window.
+    Arrays only: a long run's plan has millions of writes.
+    """
+    from dvgate.sim.testbench import PLAN_PORTS, input_writes
+
+    writes = input_writes(params, stim, strobe=False)
+    kinds = {name: kind for kind, (name, _, _) in enumerate(input_ports(params))}
+    lookup = np.array([kinds.get(name, -1) for name in PLAN_PORTS], dtype=np.int64)
+    if np.any(lookup[np.unique(writes.port)] < 0):
+        raise KeyError(next(PLAN_PORTS[p] for p in np.unique(writes.port) if lookup[p] < 0))
+    planned_kind = lookup.astype(np.uint32)[writes.port]
+    edges = np.asarray(stim.strobe_edges, dtype=np.int64)
+    edges = edges[:np.searchsorted(edges, stim.cycles)]  # strictly increasing: a view, no copy
+    idle = 0 if params.edge_rising else 1
+    levels = np.empty(len(edges), dtype=np.int8)
+    levels[0::2], levels[1::2] = 1 - idle, idle
+    sample_cycles = np.asarray(samples, dtype=np.int64).reshape(-1)
+    extra = np.array([window], dtype=np.int64) if window is not None else np.zeros((0, 2), dtype=np.int64)
+
+    def same(kind: int, count: int) -> np.ndarray:
+        return np.broadcast_to(np.uint32(kind), (count,))
+
+    parts = [
+        (writes.cycle, planned_kind, writes.value.astype(np.int64, copy=False)),
+        (edges, same(kinds["strobe"], len(edges)), levels),
+        (sample_cycles, same(SAMPLE_KIND, len(sample_cycles)), np.zeros(len(sample_cycles), np.int8)),
+        (extra[:, 0], same(WINDOW_KIND, len(extra)), extra[:, 1]),
+    ]
+    out = []
+    for cycle, kind, value in parts:
+        # The file's cycles are unsigned (a negative one wraps, and the harness refuses it).
+        cycle = cycle.view(np.uint64) if cycle.flags.c_contiguous else cycle.astype(np.uint64)
+        if np.any(cycle[1:] < cycle[:-1]):
+            order = np.argsort(cycle, kind="stable")
+            cycle, kind, value = cycle[order], kind[order], value[order]
+        out.append((cycle, kind, value))
+    return out
+
+
+def _record_blocks(sources: list[tuple[np.ndarray, np.ndarray, np.ndarray]],
+                   block: int = RECORD_BLOCK) -> Iterator[np.ndarray]:
+    """The records sorted by cycle (at one cycle in source order), a span of cycles at a time.
+
+    Each source is sorted, so sorting each span of cycles on its own gives the same
+    records as one stable sort of them all, without a copy of them all at once.
+    """
+    cuts = [cycle[::block] for cycle, _, _ in sources if len(cycle)]
+    if not cuts:
+        return
+    # Span k is cycles bounds[k] .. bounds[k + 1] - 1 (the last one: to the end); the
+    # first bound is the smallest cycle of all.
+    bounds = np.unique(np.concatenate(cuts))
+    ranges = []
+    for cycle, _, _ in sources:
+        lo = np.searchsorted(cycle, bounds, "left")
+        ranges.append((lo, np.append(lo[1:], len(cycle))))
+    for k in range(len(bounds)):
+        pieces = [(cycle[lo[k]:hi[k]], kind[lo[k]:hi[k]], value[lo[k]:hi[k]])
+                  for (cycle, kind, value), (lo, hi) in zip(sources, ranges, strict=True) if hi[k] > lo[k]]
+        recs = np.zeros(sum(len(c) for c, _, _ in pieces), dtype=_RECORD)
+        if len(recs):
+            recs["cycle"] = np.concatenate([c for c, _, _ in pieces])
+            recs["kind"] = np.concatenate([kd for _, kd, _ in pieces])
+            recs["value"] = np.concatenate([v for _, _, v in pieces])
+            yield recs[np.argsort(recs["cycle"], kind="stable")]
+
+
 def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[int] = (),
                      window: tuple[int, int] | None = None) -> np.ndarray:
     """The stimulus as records ``(cycle, kind, value)``: the testbench's port plan, the pin edges, samples.
@@ -1023,41 +1099,24 @@ def stimulus_records(params: HardwareParams, stim: Stimulus, samples: Sequence[i
     Kind ``i`` sets input port ``input_ports(params)[i]`` from that cycle on; kind
     :data:`SAMPLE_KIND` asks for the pulse counts up to that cycle; kind
     :data:`WINDOW_KIND` (from ``window = (start, stop)``) keeps only the edges of pulses
-    that overlap cycles ``start .. stop - 1``. Sorted by cycle (stable).
+    that overlap cycles ``start .. stop - 1``. Sorted by cycle; at one cycle the plan's
+    writes (one per port) come first, then the pin's edge, the samples and the window.
     """
-    from dvgate.sim.testbench import input_plan
-
-    # The port plan of everything but the pin, exactly as the Python testbench makes it.
-    plan = input_plan(params, dataclasses.replace(stim, strobe_edges=()))
-    kinds = {name: kind for kind, (name, _, _) in enumerate(input_ports(params))}
-    # Straight into an array: a list of a tuple per port write would cost more than the plan itself.
-    count = sum(len(ports) for ports in plan.values())
-    planned = np.fromiter((x for cycle, ports in plan.items() for port, value in ports.items()
-                           for x in (cycle, kinds[port], value)), dtype=np.int64, count=3 * count).reshape(-1, 3)
-    del plan
-    edges = np.asarray(stim.strobe_edges, dtype=np.int64)
-    edges = edges[edges < stim.cycles]
-    idle = 0 if params.edge_rising else 1
-    levels = idle ^ ((np.arange(len(edges)) + 1) & 1)
-    sample_cycles = np.sort(np.asarray(samples, dtype=np.int64).reshape(-1))
-    extra = np.array([window], dtype=np.int64) if window is not None else np.zeros((0, 2), dtype=np.int64)
-    recs = np.zeros(len(planned) + len(edges) + len(sample_cycles) + len(extra), dtype=_RECORD)
-    recs["cycle"] = np.concatenate([planned[:, 0], edges, sample_cycles, extra[:, 0]])
-    recs["kind"] = np.concatenate([planned[:, 1], np.full(len(edges), kinds["strobe"], np.int64),
-                                   np.full(len(sample_cycles), SAMPLE_KIND, np.int64),
-                                   np.full(len(extra), WINDOW_KIND, np.int64)])
-    recs["value"] = np.concatenate([planned[:, 2], levels, np.zeros(len(sample_cycles), np.int64), extra[:, 1]])
-    # Stable: the plan's value for the pin at cycle 0 comes before an edge at cycle 0.
-    return recs[np.argsort(recs["cycle"], kind="stable")]
+    blocks = list(_record_blocks(_record_sources(params, stim, samples, window)))
+    return np.concatenate(blocks) if blocks else np.zeros(0, dtype=_RECORD)
 
 
 def write_stimulus(path: str | Path, params: HardwareParams, stim: Stimulus, *, samples: Sequence[int] = (),
                    window: tuple[int, int] | None = None, flags: int = 0) -> None:
-    """Write the harness's stimulus file for ``stim`` (see the module's notes for the format)."""
-    recs = stimulus_records(params, stim, samples, window)
+    """Write the harness's stimulus file for ``stim`` (see the module's notes for the format).
+
+    The records of :func:`stimulus_records`, written a span of cycles at a time.
+    """
+    sources = _record_sources(params, stim, samples, window)
     with open(path, "wb") as handle:
-        handle.write(_STIM_HEADER.pack(STIM_MAGIC, params.n, flags, stim.cycles, len(recs)))
-        recs.tofile(handle)
+        handle.write(_STIM_HEADER.pack(STIM_MAGIC, params.n, flags, stim.cycles, sum(len(c) for c, _, _ in sources)))
+        for block in _record_blocks(sources):
+            block.tofile(handle)
 
 
 @dataclass(frozen=True, eq=False)
