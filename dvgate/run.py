@@ -51,7 +51,7 @@ from dvgate.sim.program import Program, make_program, program_settings
 from dvgate.sim.scenarios import load_scenario
 from dvgate.sim.sensor import SensorEffect, apply_sensor, sensor_model
 from dvgate.sim.stimulus import periodic_strobe_edges
-from dvgate.sim.trace import Edge, RunResult, Stimulus
+from dvgate.sim.trace import Cycles, Edge, RunResult, Stimulus
 
 #: A cycle-accurate engine: ``engine(params, stim) -> RunResult`` (as ``run_model``).
 Engine = Callable[..., RunResult]
@@ -147,11 +147,34 @@ def plan_run(program: Program, config: Config, *, read_every: int = 1) -> RunPla
     tail = period + hw.latency_cyc + hw.backlog * hw.pulse_period_cyc + 1
     # The run ends on a whole number of computation cycles, so the last read is a full one.
     stop = origin + -(-(end + tail - origin) // read_every) * read_every
-    edges = periodic_strobe_edges(stop + 1, period, config.strobe_width_cyc, first=origin + period)
-    stim = Stimulus(cycles=stop, strobe_edges=edges, rate_changes=program.rate_changes(origin, hw.rates),
+    edges, takes = _strobes(hw, config, origin + period, stop)
+    stim = Stimulus(cycles=stop, strobe_edges=Cycles(edges), rate_changes=program.rate_changes(origin, hw.rates),
                     arm_changes=((origin - 1, True),))
-    takes = np.array(strobe_cycles(hw, edges, stop), dtype=np.int64)
-    return RunPlan(stim, origin, stop, np.array(edges[0::2], dtype=np.int64), takes[takes >= origin])
+    return RunPlan(stim, origin, stop, edges[0::2].copy(), takes[takes >= origin])
+
+
+#: Strobes made at a time by :func:`_strobes` (bounds the Python objects alive at once).
+_STROBE_CHUNK = 1 << 16
+
+
+def _strobes(hw: HardwareParams, config: Config, first: int, stop: int) -> tuple[np.ndarray, np.ndarray]:
+    """The periodic strobe's pin edges up to ``stop`` (inclusive) and the cycles its strobes are taken, as arrays.
+
+    The same as ``periodic_strobe_edges(stop + 1, ...)`` and :func:`strobe_cycles` on
+    them, made a chunk of strobes at a time: each chunk ends where a strobe would start,
+    so no strobe is cut by it (its width is below the period), and a long run never has
+    millions of Python integers at once.
+    """
+    period, width = config.strobe_period_cyc, config.strobe_width_cyc
+    step = _STROBE_CHUNK * period
+    edges, takes = [], []
+    for start in range(first, max(first, stop + 1), step):
+        part = periodic_strobe_edges(min(start + step, stop + 1), period, width, first=start)
+        edges.append(np.array(part, dtype=np.int64))
+        takes.append(np.array(strobe_cycles(hw, part, stop), dtype=np.int64))
+    if not edges:  # no strobe starts before the end
+        edges = [np.array(periodic_strobe_edges(stop + 1, period, width, first=first), dtype=np.int64)]
+    return np.concatenate(edges), np.concatenate(takes or [np.zeros(0, np.int64)])
 
 
 @dataclass(frozen=True)

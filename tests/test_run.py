@@ -242,3 +242,28 @@ def test_cli_refuses_to_overwrite_a_foreign_folder(tmp_path, config_file, capsys
     assert main(["run", str(path), str(config_file), "-o", str(busy)]) == 2
     assert "is not a dvgate report folder" in capsys.readouterr().err
     assert (busy / "notes.txt").read_text() == "keep me"
+
+
+def test_plan_holds_the_stimulus_as_arrays_made_a_chunk_at_a_time(tmp_path, monkeypatch):
+    # A long run's strobe edges and rate changes are arrays (Cycles, RateChanges), made a
+    # few strobes at a time; they equal the tuples periodic_strobe_edges, strobe_cycles
+    # and the program give in one go.
+    from dvgate import run as module
+    from dvgate.sim.model import strobe_cycles
+    from dvgate.sim.stimulus import periodic_strobe_edges
+    from dvgate.sim.trace import Cycles, RateChanges
+
+    cfg = fast_config()
+    hw = cfg.hw
+    profile = load_profile(scenario(tmp_path, '[static]\nduration = "0.5 s"\n'), cfg)
+    program = make_program(profile, cfg)
+    monkeypatch.setattr(module, "_STROBE_CHUNK", 3)
+    plan = plan_run(program, cfg, read_every=7_000)
+    stim = plan.stimulus
+    assert isinstance(stim.strobe_edges, Cycles) and isinstance(stim.rate_changes, RateChanges)
+    edges = periodic_strobe_edges(plan.stop + 1, cfg.strobe_period_cyc, cfg.strobe_width_cyc,
+                                  first=plan.origin + cfg.strobe_period_cyc)
+    assert len(edges) > 60 and stim.strobe_edges == edges and tuple(stim.strobe_edges) == edges
+    assert stim.rate_changes == program.rate_changes(plan.origin, hw.rates)
+    takes = [t for t in strobe_cycles(hw, edges, plan.stop) if t >= plan.origin]
+    assert plan.takes.tolist() == takes and plan.strobe_edges.tolist() == list(edges[0::2])
