@@ -466,11 +466,15 @@ def _counting_path(source: str | Path, config: Config, truth: Profile, profile: 
     seconds = time.perf_counter() - began
     stages.done()
     keep = np.isin(counted.sample_cycles, sample_at)
-    samples = PulseCounts(counted.sample_cycles[keep], counted.sample_counts[keep])
     since = np.array(counted.counts, dtype=np.int64)
     if at_begin:
         since = since - counted.sample_counts[np.searchsorted(counted.sample_cycles, begin)]
-    books = tuple(conservation_errors(hw, stim, counted.result, counts=[(int(p), int(q)) for p, q in since]))
+    result = counted.result
+    # Only the kept samples stay (a long run's counts are tens of megabytes; no second copy).
+    samples = (PulseCounts(counted.sample_cycles, counted.sample_counts) if keep.all()
+               else PulseCounts(counted.sample_cycles[keep], counted.sample_counts[keep]))
+    del counted, keep
+    books = tuple(conservation_errors(hw, stim, result, counts=[(int(p), int(q)) for p, q in since]))
     timeline = _timeline_window(plan, samples, config)
     if len(plan.takes):
         stages.step(f"timeline: simulating up to cycle {timeline.stop:,}")
@@ -481,7 +485,7 @@ def _counting_path(source: str | Path, config: Config, truth: Profile, profile: 
         timeline = dataclasses.replace(timeline, edges=edges)
     stages.done()
     stages.step("host view")
-    return _host_side(source, config, truth, profile, effect, program, plan, counted.result, samples, books,
+    return _host_side(source, config, truth, profile, effect, program, plan, result, samples, books,
                       timeline, timing, engine_name, seconds)
 
 
