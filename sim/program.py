@@ -215,14 +215,16 @@ class Program:
 def _running_sums(ticks: np.ndarray, rates: np.ndarray) -> np.ndarray:
     """Exact running integral at each segment start, shape (m + 1, channels).
 
-    In int64 when no partial sum can reach 2**62 (bounded by the largest rate times the
-    whole length), else in Python integers (an object array, as large programs of wide
+    In int64 when no partial sum can reach 2**62 (bounded by the largest rate magnitude
+    times the whole length, in Python integers), else in Python integers (an object array, as large programs of wide
     rates need; a Python integer per entry costs several times the memory).
     """
     sums = np.zeros((len(ticks) + 1, rates.shape[1]), dtype=np.int64)
-    bound = float(np.abs(rates).max(initial=0)) * float(ticks.sum())
-    if bound < 2.0**62:
-        np.cumsum(rates * ticks[:, None], axis=0, out=sums[1:])
+    largest = max(int(rates.max(initial=0)), -int(rates.min(initial=0)))
+    if largest * int(ticks.sum()) < 1 << 62:
+        # In place: a long program's rates are tens of megabytes; no temporary copies.
+        np.multiply(rates, ticks[:, None], out=sums[1:])
+        np.cumsum(sums[1:], axis=0, out=sums[1:])
         return sums
     sums = sums.astype(object)
     sums[1:] = np.cumsum(rates.astype(object) * ticks.astype(object)[:, None], axis=0)
