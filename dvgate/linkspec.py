@@ -264,7 +264,11 @@ class LinkParams:
 
 
 def telemetry_fields(owed_bytes: int) -> tuple[PayloadField, ...]:
-    """Fields of the telemetry reply: the board's status, then one channel's books."""
+    """Fields of the telemetry reply: the board's status, then one channel's books and fault set.
+
+    ``fault_set`` and ``storm_period`` are the channel's fault set in force, as a FAULT
+    frame's ``set`` byte (:data:`FAULT_SET_BITS`) and ``storm_period`` encode it.
+    """
     fields = [
         PayloadField("next_seq", 2),
         PayloadField("state", 1),
@@ -283,12 +287,16 @@ def telemetry_fields(owed_bytes: int) -> tuple[PayloadField, ...]:
     ]
     fields += [PayloadField(f"rej_{reason.name.lower()}", 2) for reason in Reason]
     fields += [
+        PayloadField("ignored", 2),
         PayloadField("channel", 1),
         PayloadField("pos", 4),
         PayloadField("neg", 4),
         PayloadField("pend_pos", 2),
         PayloadField("pend_neg", 2),
         PayloadField("owed", owed_bytes, signed=True),
+        # The channel's fault set in force, encoded as in a FAULT frame's payload.
+        PayloadField("fault_set", 1),
+        PayloadField("storm_period", STORM_BYTES),
     ]
     return tuple(fields)
 

@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Protocol
 
 from dvgate.config import CYCLE_UNITS, Quantity
 from dvgate.errors import UserError
-from dvgate.linkspec import FAULT_SET_BITS, SEQ_BITS, FrameType, LinkParams, PlayState, Reason, host_lengths
+from dvgate.linkspec import COUNT_BITS, FAULT_SET_BITS, SEQ_BITS, FrameType, LinkParams, PlayState, Reason, host_lengths
 from dvgate.params import STORM_PERIOD_BITS
 from dvgate.sim.link_model import (
     ChannelFaults,
@@ -58,6 +58,8 @@ if TYPE_CHECKING:
 
 _SEQ_MOD = 1 << SEQ_BITS
 _COUNT_MOD = 1 << 32
+#: The telemetry's ``ignored`` counter stops at this value (16 bits, saturating).
+IGNORED_MAX = (1 << COUNT_BITS) - 1
 
 
 class Port(Protocol):
@@ -127,7 +129,12 @@ class ChannelCheck:
 
 @dataclass
 class StreamReport:
-    """What a stream did and whether the board's counts match the program."""
+    """What a stream did and whether the board's counts match the program.
+
+    ``strobes`` and ``ignored`` count the strobes seen and those ignored (in an ignore
+    window) during the stream; ``faults`` holds each channel's fault set in force at
+    the end, for the channels that have one.
+    """
 
     segments: int
     refits: int
@@ -139,6 +146,8 @@ class StreamReport:
     channels: list[ChannelCheck] = field(default_factory=list)
     flags: dict[str, bool] = field(default_factory=dict)
     strobes: int = 0
+    ignored: int = 0
+    faults: dict[str, Faults] = field(default_factory=dict)
     seconds: float = 0.0
     policy: str = "rest"
 
@@ -207,7 +216,7 @@ class BoardClient:
             frames += [e for e in self.decoder.feed(byte) if isinstance(e, Frame)]
         return frames
 
-    def _drain(self) -> None:
+    def drain(self) -> None:
         """Wait for the filler that follows the last reply: the board is busy until it ends."""
         deadline = time.monotonic() + self.reply_timeout
         while self._fed < self._drain_until and time.monotonic() < deadline:
@@ -227,7 +236,7 @@ class BoardClient:
         """
         for _ in range(self.retries):
             # A request before the last reply's filler has ended would be refused (BUSY).
-            self._drain()
+            self.drain()
             self._write(encode_telemetry_request(channel))
             deadline = time.monotonic() + self.reply_timeout
             while time.monotonic() < deadline:
@@ -355,8 +364,12 @@ def stream(port: Port, link: LinkParams, segments: Sequence[Segment], *,
     report.rejected = {r: (last.rejected[r] - baseline[0].rejected[r]) % (1 << 16) for r in Reason}
     report.flags = last.flags
     report.strobes = (last.strobes - baseline[0].strobes) % _COUNT_MOD
+    # The ignored-strobe counter saturates (it never wraps); the fault sets are read at the end.
+    report.ignored = last.ignored - baseline[0].ignored
+    report.faults = {names[ch]: final[ch].faults for ch in range(link.n) if final[ch].faults != Faults()}
     report.frames_sent = board.frames_sent
     report.telemetry_reads = board.reads
+    board.drain()  # the port is quiet again for the next client
     report.seconds = time.monotonic() - started
     return report
 
@@ -365,11 +378,11 @@ def _is_command(index: int, preload: int) -> bool:
     return index == preload
 
 
-def _deliver(board: BoardClient, frames: list[bytes], base: int) -> tuple[Telemetry, int]:
+def _deliver(board: BoardClient, frames: list[bytes], base: int, channel: int = 0) -> tuple[Telemetry, int]:
     """Send sequenced frames (numbered from ``base``) until the board's sequence number
     shows each applied once; each try sends again from the first one not applied.
 
-    Returns the telemetry that showed it, and the frames sent again.
+    Returns the telemetry (about ``channel``) that showed it, and the frames sent again.
     """
     done = resent = 0
     for attempt in range(board.retries):
@@ -377,7 +390,7 @@ def _deliver(board: BoardClient, frames: list[bytes], base: int) -> tuple[Teleme
             resent += len(frames) - done
         for frame in frames[done:]:
             board.send(frame)
-        tm = board.telemetry(0)
+        tm = board.telemetry(channel)
         done = (tm.next_seq - base) % _SEQ_MOD
         if done > len(frames):
             raise LinkLost(f"the board's sequence number moved to {tm.next_seq}, past what was sent: "
@@ -404,7 +417,11 @@ class SettingsReport:
     resent : int
         Frames sent again because the board had not applied them.
     telemetry : Telemetry
-        The board's telemetry (channel 0) that showed every frame applied.
+        The board's telemetry that showed every frame applied (about the last fault
+        set's channel, else channel 0).
+    in_force : dict of int to Faults
+        The fault set in force on each channel set, read back from the board after it
+        applied every frame.
     """
 
     faults: tuple[ChannelFaults, ...]
@@ -412,6 +429,18 @@ class SettingsReport:
     first_seq: int
     resent: int
     telemetry: Telemetry
+    in_force: dict[int, Faults] = field(default_factory=dict)
+
+    @property
+    def ignored(self) -> int:
+        """Strobes the board has ignored since its reset (saturates at 65535)."""
+        return self.telemetry.ignored
+
+    @property
+    def mismatched(self) -> list[int]:
+        """Channels whose fault set read back is not the last one sent (another host?)."""
+        last = {setting.channel: setting.faults for setting in self.faults}
+        return [ch for ch, faults in last.items() if self.in_force.get(ch) != faults]
 
     def seq(self, index: int) -> int:
         """Sequence number of the ``index``-th frame sent (the ignore window's comes last)."""
@@ -427,7 +456,9 @@ def send_settings(port: Port, link: LinkParams, faults: Sequence[ChannelFaults] 
     board did not apply until its sequence number shows them all applied (a frame is
     never applied twice: a repeat carries a number the board no longer expects). The
     board writes each setting to the emulator two cycles after applying its frame
-    (``docs/link.md``, "Faults"). Playback, arming and the books are untouched.
+    (``docs/link.md``, "Faults"), so the telemetry that shows them applied shows them in
+    force: the fault set of each channel set is read back from it. Playback, arming and
+    the books are untouched.
 
     Parameters
     ----------
@@ -456,8 +487,13 @@ def send_settings(port: Port, link: LinkParams, faults: Sequence[ChannelFaults] 
     frames = [encode_fault((base + k) % _SEQ_MOD, setting, link) for k, setting in enumerate(faults)]
     if ignore is not None:
         frames.append(encode_ignore((base + len(frames)) % _SEQ_MOD, ignore))
-    tm, resent = _deliver(board, frames, base)
-    return SettingsReport(tuple(faults), ignore, base, resent, tm)
+    # The telemetry that shows every frame applied is about the last channel set.
+    channels = list(dict.fromkeys(setting.channel for setting in faults))
+    tm, resent = _deliver(board, frames, base, channels[-1] if channels else 0)
+    in_force = {ch: (tm if ch == tm.channel else board.telemetry(ch)).faults for ch in channels}
+    # Let the last reply's filler end, so a request sent next over this port is not refused (busy).
+    board.drain()
+    return SettingsReport(tuple(faults), ignore, base, resent, tm, in_force)
 
 
 def channel_index(config: Config, text: str) -> int:
@@ -591,6 +627,6 @@ def load_stream_program(path: str | Path, config) -> tuple[list[Segment], int]: 
     return program_segments(program, link_params(config))
 
 
-__all__ = ["FAULT_WORDS", "BoardClient", "ChannelCheck", "LinkLost", "SettingsReport", "StreamReport",
+__all__ = ["FAULT_WORDS", "IGNORED_MAX", "BoardClient", "ChannelCheck", "LinkLost", "SettingsReport", "StreamReport",
            "channel_index", "describe_faults", "load_stream_program", "open_port", "parse_fault_setting",
            "parse_ignore_window", "program_segments", "progress_bar", "send_settings", "stream"]

@@ -7,7 +7,7 @@ for LEDs. Rules: ``docs/link.md`` (the link) and ``docs/timing.md`` (the emulato
 from pathlib import Path
 
 from amaranth.hdl import Cat, Module
-from amaranth.lib import wiring
+from amaranth.lib import data, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.link import HostLink, field_offsets
@@ -16,7 +16,7 @@ from dvgate.gateware.segments import SegmentPlayer
 from dvgate.gateware.top import Emulator, component_verilog
 from dvgate.gateware.uart_rx import UartRx
 from dvgate.gateware.uart_tx import UartTx
-from dvgate.linkspec import FLAG_BITS, LinkParams
+from dvgate.linkspec import FAULT_SET_BITS, FLAG_BITS, LinkParams
 
 
 class LinkedTop(wiring.Component):
@@ -24,7 +24,8 @@ class LinkedTop(wiring.Component):
 
     The outputs are armed when the host has armed them *and* the ``arm`` pin is high
     (tie it high on a board without an arm switch). Each output line's pulses are
-    counted (rising edges of the logical line) for the telemetry.
+    counted (rising edges of the logical line) for the telemetry, which also reports the
+    emulator's ``ignored`` counter and the requested channel's fault set in force.
 
     Parameters
     ----------
@@ -151,11 +152,15 @@ class LinkedTop(wiring.Component):
             tm.clamps.eq(emu.clamps),
             tm.deferrals.eq(emu.deferrals),
             tm.saturations.eq(emu.saturations),
+            tm.ignored.eq(emu.ignored),
         ]
         # Only the instant of an applied request matters, when the channel is below n: its
         # low bits select, the last channel stands for every other value.
+        # The fault set is the one in force (a FAULT frame applied at ``e`` holds from
+        # ``e + 2``, and the next frame ends two cycles later at the earliest).
         def books(i: int) -> list:
-            return [tm.pend_pos.eq(pend_pos[i]), tm.pend_neg.eq(pend_neg[i]), tm.owed.eq(owed[i])]
+            return [tm.pend_pos.eq(pend_pos[i]), tm.pend_neg.eq(pend_neg[i]), tm.owed.eq(owed[i]),
+                    *fault_fields(tm, emu.fault_stages[i].faults)]
 
         with m.Switch(host.tm_channel[:(hw.n - 1).bit_length()]):
             for i in range(hw.n - 1):
@@ -164,6 +169,21 @@ class LinkedTop(wiring.Component):
             with m.Default():
                 m.d.comb += books(hw.n - 1)
         return m
+
+
+def fault_fields(tm: data.View, faults: data.View) -> list:
+    """The statements that put a fault set into the telemetry's ``fault_set`` and
+    ``storm_period``, encoded as in a FAULT frame.
+
+    Parameters
+    ----------
+    tm : View of telemetry_layout
+        The link's ``tm`` input.
+    faults : View of FaultLayout
+        The fault set (a fault stage's ``faults``).
+    """
+    return [tm.fault_set.eq(Cat(*(getattr(faults, name) for name in FAULT_SET_BITS))),
+            tm.storm_period.eq(faults.storm_period)]
 
 
 def host_to_player(host: HostLink, player: SegmentPlayer) -> list:

@@ -18,7 +18,7 @@ from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
 from dvgate.gateware.link import ACCEPTED_WORD, reject_word
-from dvgate.gateware.linked_top import LinkedTop, host_to_player
+from dvgate.gateware.linked_top import LinkedTop, fault_fields, host_to_player
 from dvgate.linkspec import BITS_PER_BYTE, LinkParams, Reason
 from dvgate.params import HardwareParams
 from dvgate.sim.link_model import WireByte
@@ -283,7 +283,9 @@ class LinkBytesRun:
     arm : tuple of (int, int)
         ``(cycle, level)`` of the player's arm output from each change.
     replies : tuple of bytes
-        Frames the encoder sent, split at the flag bytes.
+        Frames the encoder sent, split at the flag bytes (with the emulator's fault stages
+        behind the fault port, so their fault sets are in the replies; the other fields
+        of the emulator are zero).
     status : dict
         As :attr:`LinkedRun.status` (without the emulator's fields).
     faults, ignores : tuple
@@ -309,6 +311,7 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
     The player drives a bank of rate registers; the encoder's bytes are taken as soon as
     offered.
     """
+    from dvgate.gateware.faults import FaultStage
     from dvgate.gateware.link import HostLink
     from dvgate.gateware.rates import RateRegisters
     from dvgate.gateware.segments import SegmentPlayer
@@ -318,6 +321,12 @@ def run_link_bytes(link: LinkParams, arrivals: Sequence[tuple[int, int, int]], c
     m.submodules.host = host = HostLink(link)
     m.submodules.player = player = SegmentPlayer(link)
     m.submodules.regs = regs = RateRegisters(hw)
+    # The emulator's fault stages behind the fault port, for the telemetry's fault set.
+    for i in range(hw.n):
+        m.submodules[f"fault{i}"] = stage = FaultStage(hw)
+        m.d.comb += [stage.we.eq(host.fault_we & (host.fault_addr == i)), stage.data.eq(host.fault_data)]
+        with m.If(host.tm_channel == i):
+            m.d.comb += fault_fields(host.tm, stage.faults)
     cycle = Signal(range(cycles + 2))
     m.d.sync += cycle.eq(cycle + 1)
     m.d.comb += [

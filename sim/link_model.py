@@ -43,7 +43,7 @@ from dvgate.linkspec import (
     host_lengths,
 )
 from dvgate.params import IGNORE_CYCLES_BITS
-from dvgate.sim.trace import FaultChange, Faults, RateChange, Stimulus
+from dvgate.sim.trace import FaultChange, Faults, RateChange, RunResult, Stimulus
 
 _SEQ_MASK = (1 << SEQ_BITS) - 1
 _COUNT_MAX = 0xFFFF
@@ -170,9 +170,19 @@ def fault_payload(seq: int, setting: ChannelFaults, link: LinkParams) -> bytes:
     if not 0 <= setting.channel < link.n:
         raise ValueError(f"fault channel {setting.channel}; allowed: 0 to {link.n - 1}")
     faults = setting.faults
-    bits = sum(1 << bit for bit, name in enumerate(FAULT_SET_BITS) if getattr(faults, name))
-    return ((seq & _SEQ_MASK).to_bytes(2, "little") + bytes((setting.channel, bits))
+    return ((seq & _SEQ_MASK).to_bytes(2, "little") + bytes((setting.channel, fault_set_byte(faults)))
             + faults.storm_period.to_bytes(STORM_BYTES, "little"))
+
+
+def fault_set_byte(faults: Faults) -> int:
+    """A fault set's yes/no fields as the ``set`` byte of a FAULT frame (and of the telemetry)."""
+    return sum(1 << bit for bit, name in enumerate(FAULT_SET_BITS) if getattr(faults, name))
+
+
+def faults_of(set_byte: int, storm_period: int) -> Faults:
+    """The fault set a ``set`` byte and a storm period encode (unknown bits ignored)."""
+    return Faults(storm_period=storm_period,
+                  **{name: bool(set_byte >> bit & 1) for bit, name in enumerate(FAULT_SET_BITS)})
 
 
 def encode_fault(seq: int, setting: ChannelFaults, link: LinkParams) -> bytes:
@@ -188,7 +198,7 @@ def parse_fault(payload: bytes, link: LinkParams) -> tuple[int, ChannelFaults | 
     if channel >= link.n or bits >> len(FAULT_SET_BITS):
         return seq, None
     try:
-        faults = Faults(storm_period=storm, **{name: bool(bits >> bit & 1) for bit, name in enumerate(FAULT_SET_BITS)})
+        faults = faults_of(bits, storm)
     except ValueError:  # a storm period too wide for the fault stage
         return seq, None
     return seq, ChannelFaults(channel, faults)
@@ -264,6 +274,11 @@ class Telemetry:
     @property
     def rejected(self) -> dict[Reason, int]:
         return {reason: self.values[f"rej_{reason.name.lower()}"] for reason in Reason}
+
+    @property
+    def faults(self) -> Faults:
+        """The fault set in force on :attr:`channel` (``fault_set`` and ``storm_period``)."""
+        return faults_of(self.values["fault_set"], self.values["storm_period"])
 
 
 def parse_telemetry(payload: bytes, link: LinkParams) -> Telemetry:
@@ -815,7 +830,7 @@ class LinkModel:
         channel = event.payload[0] if ftype == FrameType.TELEMETRY else None
         if ftype == FrameType.TELEMETRY:
             self._reply_cycle = cycle
-            self.replies.append((cycle, self.link_fields(channel)))
+            self.replies.append((cycle, self.link_fields(channel, cycle)))
         if setting is not None:
             channel = setting.channel
             self.fault_changes.append(FaultChange(cycle + FAULT_DELAY, setting.channel, setting.faults))
@@ -830,8 +845,12 @@ class LinkModel:
                     start=ftype == FrameType.START, arm_on=ftype == FrameType.ARM,
                     stop=ftype == FrameType.DISARM)
 
-    def link_fields(self, channel: int | None = None) -> dict[str, int]:
-        """The telemetry fields the link and the player hold, as they stand now."""
+    def link_fields(self, channel: int | None = None, cycle: int | None = None) -> dict[str, int]:
+        """The telemetry fields the link and the player hold, as they stand now.
+
+        With a ``channel``: also the channel and its fault set in force at ``cycle``
+        (default: every setting applied so far), as the reply encodes them.
+        """
         p, c = self.player, self.counters
         fields = {
             "next_seq": c.next_seq, "play": int(p.state), "armed": int(p.arm), "level": p.level,
@@ -840,13 +859,30 @@ class LinkModel:
         }
         fields.update({f"rej_{r.name.lower()}": v for r, v in c.rejected.items()})
         if channel is not None:
-            fields["channel"] = channel
+            faults = self.faults_at(channel, cycle)
+            fields.update(channel=channel, fault_set=fault_set_byte(faults), storm_period=faults.storm_period)
         return fields
+
+    def faults_at(self, channel: int, cycle: int | None = None) -> Faults:
+        """The fault set in force on ``channel`` at ``cycle`` (default: after every setting applied)."""
+        out = Faults()
+        for change in self.fault_changes:
+            if change.channel == channel and (cycle is None or change.cycle <= cycle):
+                out = change.faults
+        return out
 
     def stimulus(self, cycles: int, strobe_edges: Sequence[int]) -> Stimulus:
         """The emulator's stimulus for a run of ``cycles`` cycles: :func:`link_stimulus`
         with this link's fault changes and ignore windows (run :meth:`finish` first)."""
         return link_stimulus(self.player, cycles, tuple(strobe_edges), fault_changes=self.fault_changes,
+                             ignore_windows=self.ignore_windows)
+
+    def telemetry_stimulus(self, cycles: int, strobe_edges: Sequence[int]) -> Stimulus:
+        """:meth:`stimulus` without the output faults (silence, stuck, swap, storm; ``no_rest``
+        stays): the reference model's output pulses of it are the emitter's, which the
+        telemetry counts (``docs/link.md``, "Faults"), and its status and books are the same."""
+        changes = [FaultChange(c.cycle, c.channel, Faults(no_rest=c.faults.no_rest)) for c in self.fault_changes]
+        return link_stimulus(self.player, cycles, tuple(strobe_edges), fault_changes=changes,
                              ignore_windows=self.ignore_windows)
 
     def segments_applied(self) -> list[Segment]:
@@ -926,6 +962,33 @@ def link_stimulus(player: PlayerModel, cycles: int, strobe_edges: tuple[int, ...
                     arm_changes=arm or ((0, False),),
                     fault_changes=tuple(c for c in fault_changes if c.cycle < cycles),
                     ignore_windows=tuple(w for w in ignore_windows if w[0] < cycles))
+
+
+def reply_values(fields: dict[str, int], at: RunResult, *, arm_pin: bool = True) -> dict[str, int]:
+    """Every field of a telemetry reply: the link model's ``fields`` (one entry of
+    :attr:`LinkModel.replies`) with the emulator's status, pulse counts and the channel's
+    books from ``at``, the reference model's result of a run up to the request's cycle
+    (stimulus: :meth:`LinkModel.telemetry_stimulus` of that many cycles, whose output
+    pulses are the emitter's). ``arm_pin`` is the arm pin's level.
+
+    :func:`pack_telemetry` of it is the payload the board must send.
+    """
+    status, channel = at.status, fields["channel"]
+    state = {"play": fields["play"], "armed": fields["armed"], "arm_pin": int(arm_pin),
+             "host_absent": int(status.host_absent)}
+    pos, neg = at.counts(channel)
+    books = at.channels[channel]
+    values = dict(fields)
+    for name in ("play", "armed"):
+        del values[name]
+    values.update(
+        state=sum(value << STATE_BITS[name][0] for name, value in state.items()),
+        flags=sum(int(getattr(status, name)) << bit for bit, name in enumerate(FLAG_BITS)),
+        strobes=status.strobes, period=status.period, overruns=status.overruns, clamps=status.clamps,
+        deferrals=status.deferrals, saturations=status.saturations, ignored=status.ignored,
+        pos=pos % _WRAP32, neg=neg % _WRAP32, pend_pos=books.pend_pos, pend_neg=books.pend_neg, owed=books.owed,
+    )
+    return values
 
 
 def asked(segments: Sequence[Segment], n: int) -> list[int]:
@@ -1016,7 +1079,7 @@ __all__ = [
     "Applied", "ChannelFaults", "Frame", "FrameDecoder", "LinkCounters", "LinkModel", "PlayerModel", "Rejection",
     "Segment", "Telemetry", "WireByte", "arrivals", "asked", "board_lengths", "check_ignore", "check_segment",
     "crc16", "encode_command", "encode_fault", "encode_frame", "encode_ignore", "encode_segment",
-    "encode_telemetry_request", "fault_payload", "fit_segments", "host_lengths", "link_stimulus",
-    "pack_telemetry", "parse_fault", "parse_ignore", "parse_segment", "parse_telemetry", "rx_cycle",
-    "schedule", "segment_payload", "stuff",
+    "encode_telemetry_request", "fault_payload", "fault_set_byte", "faults_of", "fit_segments", "host_lengths",
+    "link_stimulus", "pack_telemetry", "parse_fault", "parse_ignore", "parse_segment", "parse_telemetry",
+    "reply_values", "rx_cycle", "schedule", "segment_payload", "stuff",
 ]

@@ -22,6 +22,7 @@ from dvgate.gateware.linked_top import write_linked_verilog
 from dvgate.linkspec import ESC, FILLER, FLAG, FrameType, LinkParams, PlayState, Reason, board_lengths, link_params
 from dvgate.sim.link_bench import run_link_bytes, run_linked
 from dvgate.sim.link_model import (
+    ChannelFaults,
     Frame,
     FrameDecoder,
     LinkModel,
@@ -32,15 +33,18 @@ from dvgate.sim.link_model import (
     encode_frame,
     encode_segment,
     encode_telemetry_request,
+    fault_payload,
     host_lengths,
     link_stimulus,
     pack_telemetry,
     parse_telemetry,
+    reply_values,
     schedule,
     segment_payload,
 )
 from dvgate.sim.model import run_model
 from dvgate.sim.stimulus import periodic_strobe_edges
+from dvgate.sim.trace import Faults
 
 HW = small_params(names=("x", "y"), init_rates=(64, 10))
 
@@ -133,6 +137,27 @@ def test_telemetry_pack_parse_round_trip():
     tm = parse_telemetry(pack_telemetry(values, LINK), LINK)
     assert tm.values == values
     assert tm.play == PlayState.PLAYING and not tm.armed and tm.arm_pin and tm.host_absent
+
+
+def test_telemetry_layout_as_documented():
+    # docs/link.md, "Telemetry": the offsets of the table, O the owed amount's bytes.
+    offsets, at = {}, 0
+    for f in LINK.telemetry_fields:
+        offsets[f.name] = at
+        at += f.size
+    o = LINK.owed_bytes
+    assert (offsets["rej_busy"], offsets["ignored"], offsets["channel"], offsets["pos"], offsets["owed"]) == \
+        (48, 50, 52, 53, 65)
+    assert (offsets["fault_set"], offsets["storm_period"], at) == (65 + o, 66 + o, 68 + o)
+    assert LINK.payload_len(FrameType.TELEMETRY_REPLY) == 68 + o
+
+
+def test_telemetry_fault_set_reads_as_the_fault_frame_writes_it():
+    faults = Faults(silence_neg=True, no_rest=True, storm_period=0x0203, storm_neg=True)
+    payload = fault_payload(0, ChannelFaults(1, faults), LINK)
+    tm = parse_telemetry(pack_telemetry({"fault_set": payload[3], "storm_period": 0x0203}, LINK), LINK)
+    assert tm.fault_set == 0b1100010 and tm.faults == faults  # bits 1, 5, 6 (docs/link.md, FAULT)
+    assert tm.storm_period == 0x0203 and parse_telemetry(pack_telemetry({}, LINK), LINK).faults == Faults()
 
 
 # -- config --------------------------------------------------------------------------------
@@ -355,11 +380,17 @@ def assert_link_equal(link: LinkParams, feed, cycles):
     assert status["rejected"] == model.counters.rejected
     assert status["underruns"] == model.player.underruns
     assert status["played"] == model.player.played
-    # Each reply: a good frame, padded with filler to the fixed reply length, whose link
-    # fields are what the model says they were.
-    assert len(run.replies) == len(model.replies)
+    assert_replies(link, run.replies, model)
+    return run, model
+
+
+def assert_replies(link: LinkParams, replies, model: LinkModel) -> None:
+    """Each reply (``LinkBytesRun.replies``): a good frame, padded with filler to the fixed
+    reply length, holding the link model's fields of its request: counters, player, the
+    channel and its fault set in force (``run_link_bytes`` has the fault stages behind it)."""
+    assert len(replies) == len(model.replies)
     frames = []
-    for reply in run.replies:
+    for reply in replies:
         decoder = FrameDecoder(host_lengths(link))
         events = [e for b in reply for e in decoder.feed(b)]
         assert isinstance(events[0], Frame) and len(reply) == link.reply_bytes
@@ -367,13 +398,10 @@ def assert_link_equal(link: LinkParams, feed, cycles):
         frames.append(events[0])
     for frame, (_, fields) in zip(frames, model.replies, strict=True):
         tm = parse_telemetry(frame.payload, link)
-        assert tm.next_seq == fields["next_seq"] and tm.accepted == fields["accepted"]
-        assert tm.channel == fields["channel"]
-        assert {r: tm.rejected[r] for r in Reason} == {r: fields[f"rej_{r.name.lower()}"] for r in Reason}
-        assert (tm.level, tm.free, tm.played, tm.underruns) == (
-            fields["level"], fields["free"], fields["played"], fields["underruns"])
         assert (int(tm.play), tm.armed) == (fields["play"], bool(fields["armed"]))
-    return run, model
+        assert {name: tm.values[name] for name in fields if name not in ("play", "armed")} == \
+            {name: value for name, value in fields.items() if name not in ("play", "armed")}
+        assert {"next_seq", "accepted", "rej_busy", "level", "channel", "fault_set", "storm_period"} <= set(fields)
 
 
 def bad_segment_frame(seq: int, *, flags: int = 0, duration: int = 100, rate_bytes: bytes = b"\x00\x00") -> bytes:
@@ -453,12 +481,15 @@ def test_linked_top_outputs_equal_the_model(policy, late):
     assert run.edges == expected.edges  # every output pulse, to the cycle
     assert model.player.underruns == (1 if late else 0) and run.status["underruns"] == model.player.underruns
     # Telemetry: decoded replies with the link's fields and the emulator's books.
-    decoder = FrameDecoder(host_lengths(link))
-    replies = [parse_telemetry(e.payload, link) for _, b in run.tx for e in decoder.feed(b) if isinstance(e, Frame)]
+    payloads = reply_payloads(link, run.tx)
+    replies = [parse_telemetry(payload, link) for payload in payloads]
     assert [t.channel for t in replies] == [0, 1]
-    for tm, (cycle, fields) in zip(replies, model.replies, strict=True):
+    for payload, tm, (cycle, fields) in zip(payloads, replies, model.replies, strict=True):
         assert tm.next_seq == fields["next_seq"] == 4 and tm.played == fields["played"]
         at = run_model(link.hw, link_stimulus(model.player, cycle, strobes))
+        # Every byte of the reply: the link model's fields with the reference model's
+        # status and books at the request's cycle.
+        assert payload == pack_telemetry(reply_values(fields, at), link)
         ch = tm.channel
         pos, neg = at.counts(ch)
         # Snapshot at the request's cycle: counts of pulses whose line is high by then.
@@ -473,6 +504,12 @@ def test_linked_top_outputs_equal_the_model(policy, late):
         for tm in replies:
             net = tm.pos - tm.neg + tm.pend_pos - tm.pend_neg
             assert (net << HW.frac_bits) + tm.owed == want[tm.channel]
+
+
+def reply_payloads(link: LinkParams, tx) -> list[bytes]:
+    """The payloads of the telemetry replies among the bytes a board sent (``LinkedRun.tx``)."""
+    decoder = FrameDecoder(host_lengths(link))
+    return [e.payload for _, b in tx for e in decoder.feed(b) if isinstance(e, Frame)]
 
 
 def test_linked_top_stays_idle_without_the_arm_pin():

@@ -72,3 +72,4 @@ def test_fuzzed_traffic(seed):
     run = run_link_bytes(link, result.arrivals, result.cycles)
     assert list(run.rejections) == [(r.cycle, r.reason) for r in result.model.rejections]
     test_link_fuzz.assert_gateware_equals_model(run, result.model, result.cycles)
+    test_link.assert_replies(link, run.replies, result.model)

@@ -13,7 +13,7 @@ import dataclasses
 
 import pytest
 from amaranth.lib import data
-from test_link import assert_link_equal, fed, make_link
+from test_link import assert_link_equal, fed, make_link, reply_payloads
 from test_stream import CONFIG
 
 from dvgate.cli import main
@@ -32,18 +32,21 @@ from dvgate.sim.link_model import (
     encode_frame,
     encode_ignore,
     encode_segment,
+    encode_telemetry_request,
     fault_payload,
     link_stimulus,
     pack_telemetry,
     parse_fault,
     parse_ignore,
+    parse_telemetry,
+    reply_values,
     rx_cycle,
     schedule,
 )
 from dvgate.sim.model import run_model
 from dvgate.sim.stimulus import periodic_strobe_edges
 from dvgate.sim.trace import Faults
-from dvgate.stream import describe_faults, parse_fault_setting, parse_ignore_window, send_settings
+from dvgate.stream import SettingsReport, describe_faults, parse_fault_setting, parse_ignore_window, send_settings
 
 LINK = make_link()
 
@@ -124,6 +127,42 @@ def test_fault_frames_through_the_linked_top_equal_the_model():
     plain = run_model(link.hw, link_stimulus(model.player, cycles, strobes))
     assert plain.edges != expected.edges
     assert run.status["played"] == 2 and run.status["underruns"] == 0
+
+
+def test_telemetry_reads_back_the_ignored_strobes_and_the_fault_sets_in_force():
+    link = make_link(timeout_cyc=200)
+    burst = Faults(no_rest=True, storm_period=13, storm_neg=True)
+    swapped = Faults(swap=True, stuck_pos=True)
+    chunks = [(encode_segment(0, Segment(900, (40, -30), last=True), link), 0),
+              (encode_command(FrameType.START, 1), 0),
+              (encode_fault(2, ChannelFaults(0, burst), link), 0),
+              (encode_fault(3, ChannelFaults(1, swapped), link), 0),
+              (encode_ignore(4, 300), 0),
+              (encode_telemetry_request(0), 400),  # after the window, whose strobes were ignored
+              (encode_telemetry_request(1), link.reply_busy_cyc)]
+    wire = schedule(chunks, link.bit_cyc, first=10)
+    cycles = wire[-1].start + link.reply_busy_cyc + 100
+    strobes = periodic_strobe_edges(cycles, 61, 3, first=7)
+    run = run_linked(link, wire, cycles, strobe_edges=strobes)
+    model = LinkModel(link)
+    model.feed_all(arrivals(wire, link.bit_cyc))
+    model.finish(cycles)
+    assert model.rejections == [] and len(model.replies) == 2
+    assert run.edges == run_model(link.hw, model.stimulus(cycles, strobes)).edges  # the faults act
+    payloads = reply_payloads(link, run.tx)
+    # Every byte of each reply: the link model's fields (the fault set in force among
+    # them) with the reference model's status, books and pulse counts (the emitter's,
+    # before the output faults) at the request's cycle.
+    for payload, (cycle, fields) in zip(payloads, model.replies, strict=True):
+        at = run_model(link.hw, model.telemetry_stimulus(cycle, strobes))
+        assert payload == pack_telemetry(reply_values(fields, at), link)
+    first, second = (parse_telemetry(payload, link) for payload in payloads)
+    # A 300-cycle window over a strobe every 61 cycles holds 4 or 5 of them (by hand).
+    assert first.ignored == second.ignored == run.status["ignored"] in (4, 5)
+    assert (first.channel, first.faults, second.channel, second.faults) == (0, burst, 1, swapped)
+    # The FAULT frame's encoding (docs/link.md): no_rest bit 5, storm_neg bit 6; swap
+    # bit 4, stuck_pos bit 2.
+    assert (first.fault_set, first.storm_period, second.fault_set, second.storm_period) == (0x60, 13, 0x14, 0)
 
 
 # -- command layer: corrupted, malformed, repeated ----------------------------------------
@@ -212,6 +251,15 @@ def test_send_settings_applies_each_once_over_a_lossy_line():
     assert report.telemetry.next_seq == 3 and report.first_seq == 0
     # The two after the lost one arrived out of turn the first time: refused, counted.
     assert model.counters.rejected[Reason.SEQUENCE] == 2
+    # Read back from the board's telemetry: each channel's set in force is the one sent.
+    assert report.in_force == {0: WANT[0].faults, 1: WANT[1].faults} and report.mismatched == []
+    assert report.telemetry.channel == 1  # the last channel set: no extra read for it
+
+
+def test_settings_report_names_a_channel_read_back_otherwise():
+    telemetry = parse_telemetry(pack_telemetry({"ignored": 7}, LINK), LINK)
+    report = SettingsReport(tuple(WANT), None, 0, 0, telemetry, {0: WANT[0].faults, 1: Faults()})
+    assert report.mismatched == [1] and report.ignored == 7
 
 
 def test_send_settings_with_every_frame_doubled_applies_once():
@@ -285,4 +333,6 @@ def test_cli_sets_faults_on_the_simulated_board(tmp_path, capsys):
     assert status == 0
     assert "channel y: swap, storm every 20 cycles on the pos line (frame 0, applied once)" in out
     assert "strobes ignored for 1000 cycles (0.001 s) (frame 1, applied once)" in out
+    assert "read back: channel y: swap, storm every 20 cycles on the pos line" in out
+    assert "strobe(s) ignored since reset" in out and "problem" not in out
     assert state.next_seq == 2

@@ -10,10 +10,11 @@ import pytest
 from dvgate.cli import main
 from dvgate.config import load_config
 from dvgate.linkspec import PlayState, Reason, link_params
-from dvgate.sim.link_model import Segment, asked
+from dvgate.sim.link_model import ChannelFaults, Segment, asked
 from dvgate.sim.program import Program, save_program
 from dvgate.sim.simboard import simboard_for
-from dvgate.stream import ChannelCheck, StreamReport, open_port, stream
+from dvgate.sim.trace import Faults
+from dvgate.stream import ChannelCheck, StreamReport, open_port, send_settings, stream
 
 CONFIG = """\
 # A small, fast emulator for tests (invented figures).
@@ -57,11 +58,17 @@ def test_stream_to_the_simulated_board_emits_exactly_the_program(config_path):
     board = simboard_for(config).start()
     port = open_port(board.port, 250000)
     try:
+        # A fault set in force during the stream, and a window of ignored strobes that
+        # ends before it (2000 cycles: 10 strobes at 200 us).
+        settings = send_settings(port, link, [ChannelFaults(1, Faults(swap=True))], ignore=2000, reply_timeout=60)
         report = stream(port, link, segments, names=["x", "y"], reply_timeout=60)
     finally:
         port.close()
         state = board.stop()
+    assert settings.in_force == {1: Faults(swap=True)} and settings.ignored <= 10
+    # The books are the emitter's, before the output faults: exact whatever the swap.
     assert report.ok, report.problems()
+    assert report.faults == {"y": Faults(swap=True)} and report.ignored == 0
     frac = link.hw.frac_bits
     for check, want in zip(report.channels, asked(segments, 2), strict=True):
         assert check.asked == want
@@ -120,6 +127,26 @@ def test_cli_streams_to_a_simboard_process(config_path, tmp_path):
     assert result.returncode == 0, result.stderr
     assert "the board emitted exactly what the program asked for" in result.stdout
     assert "exact" in result.stdout and "MISMATCH" not in result.stdout
+
+
+def test_stream_prints_the_ignored_strobes_and_the_faults_in_force(config_path, tmp_path, capsys, monkeypatch):
+    import dvgate.commands.stream as command
+
+    check = ChannelCheck("y", asked=3 << 8, pos=5, neg=2, pend_pos=0, pend_neg=0, owed=0, frac_bits=8)
+    report = StreamReport(segments=1, refits=0, channels=[check], strobes=40, ignored=12,
+                          faults={"y": Faults(swap=True, storm_period=30)})
+
+    class Port:
+        def close(self) -> None:
+            pass
+
+    monkeypatch.setattr(command, "load_stream_program", lambda path, config: ([], 0))
+    monkeypatch.setattr(command, "open_port", lambda device, baud: Port())
+    monkeypatch.setattr(command, "stream", lambda *args, **kwargs: report)
+    assert main(["stream", str(tmp_path / "p.npz"), "--port", "/dev/null", "--config", str(config_path)]) == 0
+    out = " ".join(capsys.readouterr().out.split())  # rich wraps long lines
+    assert "strobes 40 (ignored 12)" in out
+    assert "faults in force: channel y: swap, storm every 30 cycles on the pos line" in out
 
 
 def test_stream_refuses_bad_input(config_path, tmp_path, capsys):

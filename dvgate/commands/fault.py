@@ -12,6 +12,7 @@ from dvgate.errors import UserError
 from dvgate.linkspec import link_params, link_settings
 from dvgate.stream import (
     FAULT_WORDS,
+    IGNORED_MAX,
     LinkLost,
     describe_faults,
     open_port,
@@ -48,6 +49,13 @@ def run(args: argparse.Namespace) -> int:
                   f"(frame {report.seq(len(report.faults))}, applied once)")
     if report.resent:
         out.print(f"{report.resent} frame(s) sent again: the board had not applied them")
+    for channel, faults in report.in_force.items():
+        out.print(f"read back: channel {config.channels[channel].name}: {describe_faults(faults)}")
+    saturated = " or more (the count stops there)" if report.ignored == IGNORED_MAX else ""
+    out.print(f"read back: {report.ignored}{saturated} strobe(s) ignored since reset")
+    for channel in report.mismatched:
+        out.print(f"problem: channel {config.channels[channel].name}'s fault set read back is not the one sent "
+                  "(another host is talking to the board?)")
     return 0
 
 

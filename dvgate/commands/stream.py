@@ -9,7 +9,7 @@ from dvgate.cli import SAFETY
 from dvgate.commands._common import add_link_args, console, table
 from dvgate.config import load_config
 from dvgate.linkspec import link_params, link_settings
-from dvgate.stream import LinkLost, load_stream_program, open_port, progress_bar, stream
+from dvgate.stream import LinkLost, describe_faults, load_stream_program, open_port, progress_bar, stream
 
 ORDER = 80
 
@@ -45,8 +45,11 @@ def run(args: argparse.Namespace) -> int:
     rejected = ", ".join(f"{r.name.lower()} {n}" for r, n in report.rejected.items() if n) or "none"
     out.print(f"frames sent {report.frames_sent} (resent {report.frames_resent}), telemetry reads "
               f"{report.telemetry_reads}, rejected by the board: {rejected}; underruns {report.underruns}; "
-              f"strobes {report.strobes}" + (f"; {report.refits} short segment span(s) refitted" if report.refits
-                                             else ""))
+              f"strobes {report.strobes}" + (f" (ignored {report.ignored})" if report.ignored else "")
+              + (f"; {report.refits} short segment span(s) refitted" if report.refits else ""))
+    if report.faults:
+        out.print("faults in force: " + "; ".join(f"channel {name}: {describe_faults(faults)}"
+                                                  for name, faults in report.faults.items()))
     for problem in report.problems():
         out.print(f"problem: {problem}")
     if report.ok:
