@@ -293,10 +293,12 @@ def telemetry_fields(owed_bytes: int) -> tuple[PayloadField, ...]:
         PayloadField("neg", 4),
         PayloadField("pend_pos", 2),
         PayloadField("pend_neg", 2),
-        PayloadField("owed", owed_bytes, signed=True),
         # The channel's fault set in force, encoded as in a FAULT frame's payload.
         PayloadField("fault_set", 1),
         PayloadField("storm_period", STORM_BYTES),
+        # Last: the one field whose size depends on the config, so every offset before it
+        # is fixed (and the top of the gateware's shift register is its sign extension).
+        PayloadField("owed", owed_bytes, signed=True),
     ]
     return tuple(fields)
 

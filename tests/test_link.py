@@ -146,9 +146,9 @@ def test_telemetry_layout_as_documented():
         offsets[f.name] = at
         at += f.size
     o = LINK.owed_bytes
-    assert (offsets["rej_busy"], offsets["ignored"], offsets["channel"], offsets["pos"], offsets["owed"]) == \
-        (48, 50, 52, 53, 65)
-    assert (offsets["fault_set"], offsets["storm_period"], at) == (65 + o, 66 + o, 68 + o)
+    assert (offsets["rej_busy"], offsets["ignored"], offsets["channel"], offsets["pos"], offsets["pend_neg"]) == \
+        (48, 50, 52, 53, 63)
+    assert (offsets["fault_set"], offsets["storm_period"], offsets["owed"], at) == (65, 66, 68, 68 + o)
     assert LINK.payload_len(FrameType.TELEMETRY_REPLY) == 68 + o
 
 

@@ -7,7 +7,7 @@ from amaranth.sim import Simulator
 
 from dvgate.gateware.pulse_counts import PulseCounters
 
-BASE = 51  # payload offset of ``pos`` in the telemetry reply (any offset works)
+BASE = 53  # payload offset of ``pos`` in the telemetry reply (any offset works)
 
 
 def random_lines(n: int, cycles: int, seed: int, busy: float) -> list[int]:
