@@ -183,14 +183,18 @@ def test_corrupted_malformed_and_repeated_fault_frames():
         encode_ignore(1, 40),                                            # applied
         encode_ignore(1, 40),                                            # SEQUENCE: a repeat
         encode_fault(5, ChannelFaults(0, Faults(swap=True)), LINK),      # SEQUENCE: 2 expected
+        encode_telemetry_request(1),                                     # applied
+        encode_telemetry_request(0),                                     # BUSY
     ]
-    run, model = assert_link_equal(LINK, fed(frames), 1200)
+    run, model = assert_link_equal(LINK, fed(frames), 1600)
     assert [r.reason for r in model.rejections] == [Reason.CRC, Reason.TRUNCATED] + [Reason.FORMAT] * 4 + \
-        [Reason.SEQUENCE] * 3
+        [Reason.SEQUENCE] * 3 + [Reason.BUSY]
     assert model.counters.rejected[Reason.FORMAT] == 4 and model.counters.next_seq == 2
     # The gateware wrote the good setting once and the window once, nothing else.
     assert [(ch, bits) for _, ch, bits in run.faults] == [(1, pack_faults(Faults(stuck_pos=True)))]
     assert [length for _, length in run.ignores] == [40]
+    # The reply (equal to the model's, above) reads back channel 1's set: stuck_pos, bit 2.
+    assert [(fields["channel"], fields["fault_set"]) for _, fields in model.replies] == [(1, 0b100)]
 
 
 # -- the host API ------------------------------------------------------------------------------
