@@ -1229,8 +1229,10 @@ def _read_results(params: HardwareParams, stim: Stimulus, edges_path: Path, resu
     at += 2 * n
     n_samples = int(words[at])
     at += 1
-    rows = words[at:at + n_samples * (1 + 2 * n)].astype(np.int64).reshape(n_samples, 1 + 2 * n)
-    sample_cycles, sample_counts = rows[:, 0].copy(), rows[:, 1:].reshape(n_samples, n, 2).copy()
+    # A view of the file's bytes (counts fit int64); the copies below outlive them.
+    rows = words[at:at + n_samples * (1 + 2 * n)].view("<i8").reshape(n_samples, 1 + 2 * n)
+    sample_cycles = rows[:, 0].astype(np.int64)
+    sample_counts = rows[:, 1:].astype(np.int64).reshape(n_samples, n, 2)
 
     edges: tuple[Edge, ...] = ()
     if not summary:
