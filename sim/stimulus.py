@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING
 
-from dvgate.sim.trace import RateChange, Stimulus
+from dvgate.sim.trace import RateChange, RateChanges, Stimulus
 
 if TYPE_CHECKING:
     from dvgate.config import Config
@@ -41,7 +41,14 @@ def integral(params: HardwareParams, stim: Stimulus, channel: int, armed: list[t
     if not starts:
         return 0
     begin = starts[-1]
-    changes = [(0, params.rates[channel])] + [(c.cycle, c.rate) for c in stim.rate_changes if c.channel == channel]
+    rates = stim.rate_changes
+    if isinstance(rates, RateChanges):
+        # The array form: the channel's changes without a record per change.
+        mine = rates.channel == channel
+        later = list(zip(rates.cycle[mine].tolist(), rates.rate[mine].tolist(), strict=True))
+    else:
+        later = [(c.cycle, c.rate) for c in rates if c.channel == channel]
+    changes = [(0, params.rates[channel])] + later
     total = 0
     for index, (cycle, rate) in enumerate(changes):
         stop = changes[index + 1][0] if index + 1 < len(changes) else math.inf

@@ -5,7 +5,10 @@ import pickle
 
 import numpy as np
 import pytest
+from conftest import small_params
 
+from dvgate.sim.model import armed_intervals
+from dvgate.sim.stimulus import integral
 from dvgate.sim.trace import Cycles, RateChange, RateChanges, Stimulus
 
 
@@ -48,3 +51,18 @@ def test_a_stimulus_of_compact_forms_equals_the_plain_one():
 def test_compact_forms_are_checked_as_the_tuples(changes, match):
     with pytest.raises(ValueError, match=match):
         Stimulus(cycles=10, **changes)
+
+
+def test_the_integral_reads_the_compact_changes_as_the_tuples():
+    params = small_params(names=("x", "y"), init_rates=(64, -5))
+    plain = Stimulus(cycles=200, strobe_edges=(), arm_changes=((3, True),),
+                     rate_changes=(RateChange(40, 0, 9), RateChange(40, 1, -4), RateChange(120, 0, -2)))
+    compact = dataclasses.replace(plain, rate_changes=RateChanges.of(plain.rate_changes))
+    armed = armed_intervals(plain)
+    for ch in range(2):
+        for upto in (None, 40, 41, 150):
+            want = integral(params, plain, ch, armed, upto)
+            assert integral(params, compact, ch, armed, upto) == want
+    # Worked by hand for channel 0 from the first armed cycle 4: initial rate to 40, 9 to 120, -2 after.
+    r0 = params.rates[0]
+    assert integral(params, compact, 0, armed) == r0 * 36 + 9 * 80 - 2 * 80
