@@ -340,3 +340,31 @@ def test_cli_sets_faults_on_the_simulated_board(tmp_path, capsys):
     assert "read back: channel y: swap, storm every 20 cycles on the pos line" in out
     assert "strobe(s) ignored since reset" in out and "problem" not in out
     assert state.next_seq == 2
+
+
+def test_cli_exits_1_when_a_set_reads_back_otherwise(tmp_path, capsys, monkeypatch):
+    # Every frame applied, but the board reports another set in force (another host
+    # wrote the channel between): the command says so and exits 1, for scripts.
+    import types
+
+    import dvgate.commands.fault as fault_command
+
+    path = tmp_path / "bench.toml"
+    path.write_text(CONFIG.format(depth=8))
+    config = load_config(path)
+    sent = parse_fault_setting(config, "y", ["swap"])
+    telemetry = types.SimpleNamespace(ignored=0)
+    report = SettingsReport((sent,), None, 7, 0, telemetry, {sent.channel: Faults(stuck_pos=True)})
+    assert report.mismatched == [sent.channel]
+
+    class Port:
+        def close(self) -> None:
+            pass
+
+    monkeypatch.setattr(fault_command, "open_port", lambda *args: Port())
+    monkeypatch.setattr(fault_command, "send_settings", lambda *args, **kwargs: report)
+    status = main(["fault", "y", "swap", "--port", "unused", "--config", str(path)])
+    out = capsys.readouterr().out
+    assert status == fault_command.EXIT_READ_BACK == 1
+    assert "read back: channel y: stuck_pos" in out
+    assert "problem: channel y's fault set read back is not the one sent" in out

@@ -22,6 +22,8 @@ from dvgate.stream import (
 )
 
 ORDER = 82
+#: Exit status when every frame was applied but a channel's fault set read back differs.
+EXIT_READ_BACK = 1
 
 
 def run(args: argparse.Namespace) -> int:
@@ -56,7 +58,8 @@ def run(args: argparse.Namespace) -> int:
     for channel in report.mismatched:
         out.print(f"problem: channel {config.channels[channel].name}'s fault set read back is not the one sent "
                   "(another host is talking to the board?)")
-    return 0
+    # A script driving a test must not take a set it did not get for one it did.
+    return EXIT_READ_BACK if report.mismatched else 0
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -65,8 +68,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         description="Set the whole fault set of one channel of a board running the linked gateware (it replaces "
                     "the channel's set; no setting, or 'none', clears it), and/or make the board ignore the "
                     "strobes for a window. Each setting is applied exactly once (docs/link.md, 'Faults'). "
-                    f"Settings: {', '.join(FAULT_WORDS)}. Exit status: 0 applied, 2 bad input, "
-                    f"{EXIT_LINK_LOST} link failed.")
+                    f"Settings: {', '.join(FAULT_WORDS)}. Exit status: 0 applied and read back, "
+                    f"{EXIT_READ_BACK} applied but a set read back differs, 2 bad input, {EXIT_LINK_LOST} link failed.")
     parser.add_argument("channel", nargs="?", metavar="CHANNEL", help="channel name or index")
     parser.add_argument("setting", nargs="*", metavar="SETTING",
                         help="silence_pos, stuck_neg, swap, no_rest, 'storm=50 us', storm_neg, ... or none")
