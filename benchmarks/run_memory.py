@@ -33,7 +33,6 @@ from __future__ import annotations
 import argparse
 import datetime
 import json
-import os
 import platform
 import re
 import resource
@@ -44,23 +43,12 @@ import tempfile
 import time
 from pathlib import Path
 
+from machine import describe
+
 EXAMPLES = Path(__file__).resolve().parents[1] / "dvgate" / "examples"
 CONFIG = EXAMPLES / "bench.toml"
 DEMO = EXAMPLES / "scenario_demo.toml"
 PATHS = ("edges", "counts")
-
-
-def machine() -> str:
-    cpu = "unknown CPU"
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    return (f"{cpu}, {os.cpu_count()} cores, {platform.system()} {platform.release()}, "
-            f"Python {platform.python_version()}")
 
 
 def stretched(seconds: float, folder: Path) -> Path:
@@ -160,7 +148,7 @@ def main() -> None:
 
     paths = args.path or list(PATHS)
     print(f"date: {datetime.date.today().isoformat()}")
-    print(f"machine: {machine()}")
+    print(f"machine: {describe()}")
     print(f"uname: {' '.join(platform.uname())}")
     with tempfile.TemporaryDirectory(prefix="dvgate-bench-") as tmp:
         scenarios = [] if args.no_demo else [("demo", DEMO)]

@@ -20,10 +20,10 @@ from __future__ import annotations
 
 import argparse
 import datetime
-import os
-import platform
 import time
 from pathlib import Path
+
+from machine import describe
 
 from dvgate.config import load_config
 from dvgate.sim.compiled import build, compiler_description, count_compiled, run_compiled
@@ -43,19 +43,6 @@ def timed(run, *args, repeat: int = 1, **kwargs):
         result = run(*args, **kwargs)
         best = min(best, time.perf_counter() - start)
     return best, result
-
-
-def machine() -> str:
-    cpu = "unknown CPU"
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    system = f"{platform.system()} {platform.release()}"
-    return f"{cpu}, {os.cpu_count()} cores, {system}, Python {platform.python_version()}"
 
 
 def main() -> None:
@@ -79,7 +66,7 @@ def main() -> None:
         rows.append((engine, program, cycles, seconds))
         print(f"  {engine:<40} {program:<28} {cycles / seconds:>14,.0f} cycles/s", flush=True)
 
-    print(f"machine: {machine()}")
+    print(f"machine: {describe()}")
     print(f"compiler: {compiler_description()}")
     seconds, got = timed(run_amaranth, hw, short)
     assert got == want_short, "python simulation differs from the model"
@@ -131,7 +118,7 @@ def main() -> None:
     model_rate = len(model_run.strobes) / seconds
 
     lines = [
-        f"Measured {datetime.date.today().isoformat()} on {machine()}; compiler {compiler_description()}.",
+        f"Measured {datetime.date.today().isoformat()} on {describe()}; compiler {compiler_description()}.",
         f"Example config: {hw.n} channels, {clock / 1e6:g} MHz clock, strobe every {config.strobe_period_cyc} "
         "cycles, burst scheme. Every result below was checked equal to the reference model's.",
         "",
