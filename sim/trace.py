@@ -61,7 +61,30 @@ def _int64(values: Any) -> np.ndarray:
     return out
 
 
-class Cycles(Sequence[int]):
+class _ArrayBacked(Sequence[Any]):
+    """What :class:`Cycles` and :class:`RateChanges` share: columns of int64 arrays that
+    read, compare and hash like the tuple of records they stand for."""
+
+    __slots__ = ()
+
+    def _columns(self) -> tuple[np.ndarray, ...]:
+        raise NotImplementedError
+
+    def __len__(self) -> int:
+        return len(self._columns()[0])
+
+    def __eq__(self, other: object) -> bool:
+        if type(other) is type(self):
+            return all(np.array_equal(a, b) for a, b in zip(self._columns(), other._columns(), strict=True))
+        if isinstance(other, tuple):
+            return len(other) == len(self) and all(a == b for a, b in zip(self, other, strict=True))
+        return NotImplemented
+
+    def __hash__(self) -> int:
+        return hash(tuple(self))
+
+
+class Cycles(_ArrayBacked, Sequence[int]):
     """Strictly increasing cycle numbers held in one int64 array: a compact ``tuple[int, ...]``.
 
     For long runs (a billion-cycle run has millions of strobe edges): it reads like the
@@ -75,8 +98,8 @@ class Cycles(Sequence[int]):
     def __init__(self, values: Any) -> None:
         self.array = _int64(values)
 
-    def __len__(self) -> int:
-        return len(self.array)
+    def _columns(self) -> tuple[np.ndarray, ...]:
+        return (self.array,)
 
     @overload
     def __getitem__(self, index: int) -> int: ...
@@ -93,16 +116,6 @@ class Cycles(Sequence[int]):
 
     def __array__(self, dtype: Any = None, copy: bool | None = None) -> np.ndarray:
         return self.array if dtype is None else self.array.astype(dtype, copy=bool(copy))
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, Cycles):
-            return bool(np.array_equal(self.array, other.array))
-        if isinstance(other, tuple):
-            return len(other) == len(self) and all(a == b for a, b in zip(self, other, strict=True))
-        return NotImplemented
-
-    def __hash__(self) -> int:
-        return hash(tuple(self))
 
     def __repr__(self) -> str:
         return f"Cycles({len(self)} cycles from {self[0]} to {self[-1]})" if len(self) else "Cycles(())"
@@ -151,7 +164,7 @@ class Faults:
                 or self.storm_period != 0)
 
 
-class RateChanges(Sequence[RateChange]):
+class RateChanges(_ArrayBacked, Sequence[RateChange]):
     """Rate changes held as three int64 arrays: a compact ``tuple[RateChange, ...]``.
 
     For long runs (a rate program of hours has millions of changes): every reader that
@@ -191,8 +204,8 @@ class RateChanges(Sequence[RateChange]):
                    np.fromiter((c.channel for c in changes), np.int64, n),
                    np.fromiter((c.rate for c in changes), np.int64, n))
 
-    def __len__(self) -> int:
-        return len(self.cycle)
+    def _columns(self) -> tuple[np.ndarray, ...]:
+        return (self.cycle, self.channel, self.rate)
 
     @overload
     def __getitem__(self, index: int) -> RateChange: ...
@@ -209,17 +222,6 @@ class RateChanges(Sequence[RateChange]):
             for cycle, channel, rate in zip(self.cycle[part].tolist(), self.channel[part].tolist(),
                                             self.rate[part].tolist(), strict=True):
                 yield RateChange(cycle, channel, rate)
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, RateChanges):
-            return all(np.array_equal(a, b) for a, b in ((self.cycle, other.cycle), (self.channel, other.channel),
-                                                          (self.rate, other.rate)))
-        if isinstance(other, tuple):
-            return len(other) == len(self) and all(a == b for a, b in zip(self, other, strict=True))
-        return NotImplemented
-
-    def __hash__(self) -> int:
-        return hash(tuple(self))
 
     def __repr__(self) -> str:
         if not len(self):
