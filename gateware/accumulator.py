@@ -98,13 +98,12 @@ class RateAccumulator(wiring.Component):
         frac = p.frac_bits
         owed = self.owed
 
-        n_acc = Signal.like(self.n)
         # The owed update splits at the binary point: the hand-over only changes the whole
         # part, so the fraction is a plain add whose carry joins a short whole-part sum,
         # and the saturation test looks at the whole part alone.
         rate_ext  = Signal(signed(max(p.rate_bits, frac + 1)))
         lo        = Signal(frac + 1)
-        hi_w      = max(p.owed_bits, p.rate_bits - frac, n_acc.shape().width) + 2
+        hi_w      = max(p.owed_bits, p.rate_bits - frac, len(self.n)) + 2
         hi0       = Signal(signed(hi_w))
         hi_t      = Signal(signed(hi_w))
         hi        = Signal(signed(hi_w))
@@ -171,7 +170,6 @@ class RateAccumulator(wiring.Component):
             self.load.eq(self.take & self.accept),
             self.clamp_evt.eq(self.load & hand_clmp),
             self.defer_evt.eq(self.take & ~self.accept),
-            n_acc.eq(Mux(self.load, hand_n, 0)),
         ]
 
         with m.If(~self.armed):
