@@ -5,7 +5,7 @@ Cycle rules: ``docs/timing.md``, section "Rate accumulator".
 
 from __future__ import annotations
 
-from amaranth.hdl import Cat, Module, Mux, Shape, Signal, signed, unsigned
+from amaranth.hdl import Cat, Module, Mux, Shape, Signal, Value, signed, unsigned
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
@@ -31,6 +31,66 @@ def count_shape(params: HardwareParams) -> Shape:
 def net_shape(params: HardwareParams) -> Shape:
     """Shape of the signed net count ``n`` one strobe asks for (``-clamp .. clamp``)."""
     return signed(params.clamp.bit_length() + 1)
+
+
+def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
+              armed: Value) -> tuple[Signal, Signal]:
+    """The net count a strobe asks for, and whether it is clamped, from an owed amount.
+
+    Parameters
+    ----------
+    m : Module
+        Where the (combinational) logic goes.
+    params : HardwareParams
+        Scheme and clamp.
+    whole : Value
+        Signed whole part (floor) of the owed amount, before any saturation: a value past
+        a limit asks for the same count as the saturated one (``owed_bits`` leaves room
+        above the clamp, and the sign decides binary and ternary).
+    frac_nz : Value
+        The owed amount's fraction is not zero.
+    armed : Value
+        Low: the owed amount is 0 whatever ``whole`` and ``frac_nz`` say.
+
+    Returns
+    -------
+    tuple of Signal
+        ``(n, clamped)``: the net count (:func:`net_shape`) and, for the burst scheme,
+        whether the whole part was past the clamp (always 0 otherwise).
+    """
+    ask_n    = Signal(net_shape(params))
+    ask_clmp = Signal()
+    neg      = whole[-1]
+    if params.scheme == "burst":
+        # Truncation toward zero: a negative amount with a fraction is one less whole.
+        up    = Signal()
+        low_n = Signal.like(ask_n)
+        big_p = Signal()
+        big_n = Signal()
+        m.d.comb += [
+            up.eq(neg & frac_nz),
+            low_n.eq(whole[:len(ask_n)] + up),
+            big_p.eq(whole > params.clamp),
+            big_n.eq(whole < -params.clamp - up),
+            ask_clmp.eq(armed & (big_p | big_n)),
+            ask_n.eq(Mux(~armed, 0, Mux(big_p, params.clamp, Mux(big_n, -params.clamp, low_n)))),
+        ]
+    elif params.scheme == "binary":
+        m.d.comb += ask_n.eq(Mux(~armed | ~neg, 1, -1))
+    else:  # ternary: at least one whole pulse either way (-1 with no fraction is -one)
+        at_one   = whole >= 1
+        at_m_one = (whole < -1) | ((whole == -1) & ~frac_nz)
+        m.d.comb += ask_n.eq(Mux(~armed, 0, Mux(at_one, 1, Mux(at_m_one, -1, 0))))
+    return ask_n, ask_clmp
+
+
+def hand_over_lines(params: HardwareParams, n: Value, no_rest: Value) -> tuple[Value, Value]:
+    """Pulses a hand-over of net count ``n`` puts on the positive and the negative line.
+
+    Rest pulses (burst) on both lines unless ``no_rest``; then ``n`` on its own line.
+    """
+    rest = Mux(no_rest, 0, params.rest) if params.scheme == "burst" else 0
+    return rest + Mux(n > 0, n, 0), rest + Mux(n < 0, -n, 0)
 
 
 class RateAccumulator(wiring.Component):
@@ -135,38 +195,15 @@ class RateAccumulator(wiring.Component):
         # asks for the same as ``hi0`` does (``owed_bits`` leaves room above the clamp: a
         # value past a limit is clamped either way, and its sign decides binary and
         # ternary), so only the disarmed case (next owed amount 0) is set apart.
-        ask_n    = Signal.like(self.n)
-        ask_clmp = Signal()
-        neg0     = hi0[-1]
-        frac_nz  = lo[:frac].any()
-        if p.scheme == "burst":
-            # Truncation toward zero: a negative amount with a fraction is one less whole.
-            up    = Signal()
-            low_n = Signal.like(self.n)
-            big_p = Signal()
-            big_n = Signal()
-            m.d.comb += [
-                up.eq(neg0 & frac_nz),
-                low_n.eq(hi0[:len(self.n)] + up),
-                big_p.eq(hi0 > p.clamp),
-                big_n.eq(hi0 < -p.clamp - up),
-                ask_clmp.eq(self.armed & (big_p | big_n)),
-                ask_n.eq(Mux(~self.armed, 0, Mux(big_p, p.clamp, Mux(big_n, -p.clamp, low_n)))),
-            ]
-        elif p.scheme == "binary":
-            m.d.comb += ask_n.eq(Mux(~self.armed | ~neg0, 1, -1))
-        else:  # ternary: at least one whole pulse either way (-1 with no fraction is -one)
-            at_one   = hi0 >= 1
-            at_m_one = (hi0 < -1) | ((hi0 == -1) & ~frac_nz)
-            m.d.comb += ask_n.eq(Mux(~self.armed, 0, Mux(at_one, 1, Mux(at_m_one, -1, 0))))
+        ask_n, ask_clmp = ask_logic(m, p, hi0, lo[:frac].any(), self.armed)
         with m.If(self.prepare):
             m.d.sync += [hand_n.eq(ask_n), hand_clmp.eq(ask_clmp)]
 
-        rest = Mux(self.no_rest, 0, p.rest) if p.scheme == "burst" else 0
+        new_pos, new_neg = hand_over_lines(p, hand_n, self.no_rest)
         m.d.comb += [
             self.n.eq(hand_n),
-            self.new_pos.eq(rest + Mux(hand_n > 0, hand_n, 0)),
-            self.new_neg.eq(rest + Mux(hand_n < 0, -hand_n, 0)),
+            self.new_pos.eq(new_pos),
+            self.new_neg.eq(new_neg),
             self.load.eq(self.take & self.accept),
             self.clamp_evt.eq(self.load & hand_clmp),
             self.defer_evt.eq(self.take & ~self.accept),

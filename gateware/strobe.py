@@ -38,6 +38,11 @@ class StrobeDetector(wiring.Component):
     stb_next : Signal(1), out
         ``stb`` of the next cycle, known one cycle ahead (lets the channels prepare
         their hand-over).
+    ahead_valid : Signal(1), out
+        The synchronized strobe is active and has not yet given its strobe.
+    ahead : Signal(range(min_width_cyc)), out
+        With ``ahead_valid``: ``stb`` comes ``ahead`` cycles from now if the strobe stays
+        active (0: this cycle). Lets a shared datapath prepare every channel in turn.
     strobes : Signal(32), out
         Strobes seen since reset; wraps.
     period : Signal(32), out
@@ -45,13 +50,6 @@ class StrobeDetector(wiring.Component):
     host_absent : Signal(1), out
         High while ``absence_cyc`` or more cycles have passed since the last strobe.
     """
-
-    pin: In(1)
-    stb: Out(1)
-    stb_next: Out(1)
-    strobes: Out(STROBE_COUNT_BITS)
-    period: Out(STROBE_COUNT_BITS)
-    host_absent: Out(1)
 
     def __init__(self, *, edge_rising: bool, min_width_cyc: int, absence_cyc: int) -> None:
         if not isinstance(min_width_cyc, int) or min_width_cyc < 1:
@@ -61,7 +59,16 @@ class StrobeDetector(wiring.Component):
         self._edge_rising = bool(edge_rising)
         self._min_width_cyc = min_width_cyc
         self._absence_cyc = absence_cyc
-        super().__init__()
+        super().__init__({
+            "pin": In(1),
+            "stb": Out(1),
+            "stb_next": Out(1),
+            "ahead_valid": Out(1),
+            "ahead": Out(range(max(2, min_width_cyc))),
+            "strobes": Out(STROBE_COUNT_BITS),
+            "period": Out(STROBE_COUNT_BITS),
+            "host_absent": Out(1),
+        })
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -85,6 +92,7 @@ class StrobeDetector(wiring.Component):
         with m.Elif(run != width):
             m.d.sync += run.eq(run + 1)
         m.d.comb += self.stb.eq(active & (run == width - 1))
+        m.d.comb += [self.ahead_valid.eq(active & (run != width)), self.ahead.eq(width - 1 - run)]
         # What stb will be next cycle: s1 becomes s2, run advances. Two strobes are never
         # on consecutive cycles (run passes M - 1 once per active stretch).
         m.d.comb += self.stb_next.eq((s1 ^ idle) & Mux(active, Mux(run != width, run + 1, run) == width - 1,
