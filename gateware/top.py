@@ -9,7 +9,7 @@ import re
 from pathlib import Path
 
 from amaranth.back import verilog
-from amaranth.hdl import Module, Signal, signed
+from amaranth.hdl import Module, Mux, Signal, Value, signed
 from amaranth.lib import data, wiring
 from amaranth.lib.wiring import In, Out
 
@@ -26,12 +26,70 @@ _NAME_RE = re.compile(r"^[A-Za-z][0-9A-Za-z_]*$")
 
 
 class StatusFlags(data.Struct):
-    """Sticky event flags, set since reset."""
+    """Sticky event flags, set since reset; each rises at a taken strobe (:func:`status_logic`)."""
 
     overrun: 1
     clamped: 1
     deferred: 1
     saturated: 1
+
+
+def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal, clamped: Signal,
+                 deferred: Signal, sat_evt: Signal) -> Signal:
+    """The sticky flags and event counters of a top, added to ``m``'s ``sync`` domain.
+
+    The contract (rules: ``docs/timing.md``, "Status"):
+
+    - ``overrun``, ``clamped``, ``deferred`` are events of taken strobes: in a cycle
+      where any of their bits is 1, the flag of that name is set and its counter counts
+      one (16 bits, saturating). They are counted as given: the caller drives them only
+      in the cycle a strobe is taken (nothing here gates them with ``take``).
+    - ``sat_evt`` bit ``i`` is 1 when channel ``i``'s owed update of this cycle saturates
+      (``owed(k+1)`` held at a limit). It marks the channel in the ``clipped`` register,
+      ``clipped(k+1) = (clipped(k) & ~take(k)) | sat_evt(k)``. A cycle with ``take`` and
+      any mark set counts one saturation and sets ``flags.saturated``; so a mark made in
+      a strobe's own cycle belongs to the next taken strobe, and marks outlast disarming
+      and strobes that are not taken.
+    - Every flag and counter is a register: an event at cycle ``k`` shows from ``k + 1``.
+
+    Parameters
+    ----------
+    m : Module
+        The top's module; the ``clipped`` register and the updates go in its ``sync``
+        domain (so the register is named ``clipped`` in the top).
+    top : wiring.Component
+        Has the ports ``flags`` (:class:`StatusFlags`) and ``overruns``, ``clamps``,
+        ``deferrals``, ``saturations`` (each ``Signal(16)``), which this logic drives.
+    take : Value, 1 bit
+        A strobe is taken this cycle (``stb & armed & ~ignoring``).
+    overrun, clamped, deferred : Signal(n)
+        Per channel: the strobe taken this cycle found the emitter busy; its accepted
+        hand-over was clamped; it was deferred.
+    sat_evt : Signal(n)
+        Per channel: this cycle's owed update saturates.
+
+    Returns
+    -------
+    Signal(n)
+        The ``clipped`` marks (one bit per channel): the channels whose owed amount
+        saturated since the last taken strobe.
+    """
+    clipped = Signal(len(sat_evt), name="clipped")
+    m.d.sync += clipped.eq(Mux(take, 0, clipped) | sat_evt)
+    # A taken strobe reports the marks made before its own cycle.
+    saturated = take & clipped.any()
+    events = [
+        (overrun.any(), top.flags.overrun, top.overruns),
+        (clamped.any(), top.flags.clamped, top.clamps),
+        (deferred.any(), top.flags.deferred, top.deferrals),
+        (saturated, top.flags.saturated, top.saturations),
+    ]
+    for event, flag, counter in events:
+        with m.If(event):
+            m.d.sync += flag.eq(1)
+            with m.If(counter != _EVENT_MAX):
+                m.d.sync += counter.eq(counter + 1)
+    return clipped
 
 
 class Emulator(wiring.Component):
@@ -79,8 +137,11 @@ class Emulator(wiring.Component):
         No strobe for ``absence_cyc`` cycles.
     flags : StatusFlags, out
         Sticky ``overrun``, ``clamped``, ``deferred``, ``saturated``.
-    overruns, clamps, deferrals, saturations : Signal(16), out
-        Cycles in which any channel had the event; saturating.
+    overruns, clamps, deferrals : Signal(16), out
+        Taken strobes at which any channel had the event; saturating.
+    saturations : Signal(16), out
+        Taken strobes at which some channel's owed amount had saturated since the
+        previous taken strobe; saturating (:func:`status_logic`).
     ignored : Signal(16), out
         Strobes detected inside an ignore window (armed or not); saturating.
     detector : StrobeDetector
@@ -164,7 +225,7 @@ class Emulator(wiring.Component):
         overrun     = Signal(p.n)
         clamped     = Signal(p.n)
         deferred    = Signal(p.n)
-        saturated   = Signal(p.n)
+        sat_evt     = Signal(p.n)
 
         m.d.sync += armed.eq(self.arm)
         m.d.comb += [
@@ -219,21 +280,10 @@ class Emulator(wiring.Component):
                 overrun[i].eq(take & em.busy),
                 clamped[i].eq(acc.clamp_evt),
                 deferred[i].eq(acc.defer_evt),
-                saturated[i].eq(acc.sat_evt),
+                sat_evt[i].eq(acc.sat_evt),
             ]
 
-        events = [
-            (overrun, self.flags.overrun, self.overruns),
-            (clamped, self.flags.clamped, self.clamps),
-            (deferred, self.flags.deferred, self.deferrals),
-            (saturated, self.flags.saturated, self.saturations),
-        ]
-        for per_channel, flag, counter in events:
-            any_channel = per_channel.any()
-            with m.If(any_channel):
-                m.d.sync += flag.eq(1)
-                with m.If(counter != _EVENT_MAX):
-                    m.d.sync += counter.eq(counter + 1)
+        status_logic(m, self, take, overrun, clamped, deferred, sat_evt)
         return m
 
 

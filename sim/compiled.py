@@ -227,9 +227,11 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
     design's registers with these sets and refuses any other (see ``_design_code``).
     """
     needed = {"armed", "detector.s1", "detector.s2", "detector.run", "detector.since", "rate_regs.rates"}
-    # Held while quiet: no strobe, no write, no event; only read for the status.
+    # Held while quiet: no strobe, no write, no event; only read for the status. The
+    # saturation marks (``clipped``) change only on a saturating update or a taken
+    # strobe, and a quiet span has neither.
     holding = {"flags", "overruns", "clamps", "deferrals", "saturations", "ignored", "detector.period",
-               "detector.strobes"}
+               "detector.strobes", "clipped"}
     # Read or advanced when present (the fault stage and the ignore window).
     optional = {"ignore_left"}
     for i, name in enumerate(params.names):

@@ -81,6 +81,48 @@ def ignore_spans(stim: Stimulus) -> list[tuple[int, int]]:
     return out
 
 
+def strobe_fates(params: HardwareParams, stim: Stimulus) -> tuple[list[int], list[int], list[int]]:
+    """The detector's strobes, those that fell in an ignore window, and those taken.
+
+    A strobe is taken when the outputs are armed at its cycle and no ignore window
+    covers it (``docs/timing.md``). Each list is sorted.
+    """
+    stbs = strobe_cycles(params, stim.strobe_edges, stim.cycles)
+    armed = armed_intervals(stim)
+    arm_starts = [a for a, _ in armed]
+    spans = ignore_spans(stim)
+    span_starts = [a for a, _ in spans]
+    ignored = [s for s in stbs if _member(span_starts, spans, s)]
+    ignored_set = set(ignored)
+    takes = [s for s in stbs if _member(arm_starts, armed, s) and s not in ignored_set]
+    return stbs, ignored, takes
+
+
+def counted_saturations(takes: list[int], sat_spans: list[tuple[int, int]]) -> int:
+    """Taken strobes whose hand-over finds an owed amount saturated since the previous one.
+
+    ``docs/timing.md``, "Status": the take at ``s`` counts when an update at a cycle in
+    ``[prev, s)`` saturated, ``prev`` being the previous taken strobe (0 for the first);
+    the update at ``s`` itself belongs to the next take. Not capped at the counter's width.
+
+    Parameters
+    ----------
+    takes : list of int
+        The taken strobes, sorted.
+    sat_spans : list of (int, int)
+        Sorted, disjoint half-open spans of cycles whose updates saturated (any channel).
+    """
+    starts = [a for a, _ in sat_spans]
+    count, prev = 0, 0
+    for take in takes:
+        # The last span starting before the take reaches furthest (the spans are disjoint).
+        i = bisect_left(starts, take) - 1
+        if i >= 0 and sat_spans[i][1] > prev:
+            count += 1
+        prev = take
+    return count
+
+
 def fault_timeline(stim: Stimulus, channel: int) -> list[tuple[int, Faults]]:
     """The fault sets of ``channel`` with the cycle each takes effect, from ``(0, Faults())``.
 
@@ -120,7 +162,8 @@ def _intersect(a: list[tuple[int, int]], b: list[tuple[int, int]]) -> list[tuple
 
 
 def _merge(pieces: list[tuple[int, int]]) -> list[tuple[int, int]]:
-    """Union of intervals as the pulses a line shows: overlapping or touching ones join."""
+    """Union of half-open intervals, sorted and disjoint: overlapping or touching ones join
+    (as the pulses a line shows)."""
     out: list[tuple[int, int]] = []
     for lo, hi in sorted(pieces):
         if out and lo <= out[-1][1]:
@@ -257,9 +300,13 @@ class _Emitter:
         self.next_start = cycle + 1  # cleared at `cycle`: idle from the next one
 
 
-def _advance(acc: int, rate: int, length: int, lo: int, hi: int) -> tuple[int, int]:
-    """Add ``rate`` ``length`` times with saturation; return the value and the first
-    saturating step (``length`` when none saturates)."""
+def accumulate(acc: int, rate: int, length: int, lo: int, hi: int) -> tuple[int, int]:
+    """Add ``rate`` ``length`` times, holding at ``lo`` and ``hi``; return the value and the
+    first step that saturates (``length`` when none does).
+
+    The steps are the owed amount's updates at constant rate and no hand-over: once one
+    saturates, every later one does too (the rate keeps pushing past the same limit).
+    """
     if length <= 0 or rate == 0:
         return acc, length
     if rate > 0:
@@ -304,12 +351,19 @@ class ModelRun:
         Cycles at which the detector's ``stb`` was high.
     ignored : list of int
         The strobes among them that fell in an ignore window.
+    takes : list of int
+        The strobes among them that were taken (armed, not ignored).
+    sat_spans : list of (int, int)
+        Sorted, disjoint half-open spans of the cycles whose owed update saturated on some
+        channel, whether or not a taken strobe reported it in the status.
     """
 
     result: RunResult
     counts: list[tuple[int, int]]
     strobes: list[int]
     ignored: list[int] = field(default_factory=list)
+    takes: list[int] = field(default_factory=list)
+    sat_spans: list[tuple[int, int]] = field(default_factory=list)
 
 
 def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> ModelRun:
@@ -319,18 +373,13 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
     from them.
     """
     n_cyc = stim.cycles
-    stbs = strobe_cycles(params, stim.strobe_edges, n_cyc)
+    stbs, ignored, takes = strobe_fates(params, stim)
     armed = armed_intervals(stim)
     arm_starts = [a for a, _ in armed]
-    spans = ignore_spans(stim)
-    span_starts = [a for a, _ in spans]
 
     def is_armed(cycle: int) -> bool:
         return _member(arm_starts, armed, cycle)
 
-    ignored = [s for s in stbs if _member(span_starts, spans, s)]
-    ignored_set = set(ignored)
-    takes = [s for s in stbs if is_armed(s) and s not in ignored_set]
     lo, hi = params.owed_min, params.owed_max
     one = 1 << params.frac_bits
     busy_at: set[int] = set()
@@ -356,7 +405,7 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
 
         for point in [*points, n_cyc]:
             if on:
-                acc, safe = _advance(acc, rate, point - k, lo, hi)
+                acc, safe = accumulate(acc, rate, point - k, lo, hi)
                 if safe < point - k:
                     sat_spans.append((k + safe, point))
             elif point > k:
@@ -413,26 +462,21 @@ def simulate(params: HardwareParams, stim: Stimulus, *, record: bool = True) -> 
             edges.append(Edge(ch, line, rise, fall if fall <= n_cyc else None))
     edges.sort()
 
-    status = _status(params, stbs, n_cyc, busy_at, clamp_at, defer_at, sat_spans, len(ignored))
+    sat_spans = _merge(sat_spans)  # the channels' saturating cycles, as one set
+    status = _status(params, stbs, n_cyc, busy_at, clamp_at, defer_at, counted_saturations(takes, sat_spans),
+                     len(ignored))
     result = RunResult(cycles=n_cyc, edges=tuple(edges), status=status, channels=tuple(books))
-    return ModelRun(result=result, counts=counts, strobes=stbs, ignored=ignored)
+    return ModelRun(result=result, counts=counts, strobes=stbs, ignored=ignored, takes=takes, sat_spans=sat_spans)
 
 
 def _status(params: HardwareParams, stbs: list[int], n_cyc: int, busy_at: set[int], clamp_at: set[int],
-            defer_at: set[int], sat_spans: list[tuple[int, int]], ignored: int) -> Status:
+            defer_at: set[int], saturations: int, ignored: int) -> Status:
     if stbs:
         since = min(n_cyc - 1 - stbs[-1], _COUNT_MAX)
         prev = stbs[-2] if len(stbs) > 1 else -1
         period = min(stbs[-1] - prev, _COUNT_MAX)
     else:
         since, period = min(n_cyc, _COUNT_MAX), 0
-    sat_cycles = 0
-    end = -1
-    for start, stop in sorted(sat_spans):
-        start = max(start, end)
-        if stop > start:
-            sat_cycles += stop - start
-            end = stop
     return Status(
         strobes=len(stbs) & _COUNT_MAX,
         period=period,
@@ -440,11 +484,11 @@ def _status(params: HardwareParams, stbs: list[int], n_cyc: int, busy_at: set[in
         overrun=bool(busy_at),
         clamped=bool(clamp_at),
         deferred=bool(defer_at),
-        saturated=sat_cycles > 0,
+        saturated=saturations > 0,
         overruns=min(len(busy_at), _EVENT_MAX),
         clamps=min(len(clamp_at), _EVENT_MAX),
         deferrals=min(len(defer_at), _EVENT_MAX),
-        saturations=min(sat_cycles, _EVENT_MAX),
+        saturations=min(saturations, _EVENT_MAX),
         ignored=min(ignored, _EVENT_MAX),
     )
 

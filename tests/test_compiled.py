@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import small_params
+from satkit import assert_covers_the_rule, saturating_stimulus
 
 from dvgate.config import load_config, parse_config
 from dvgate.errors import UserError
@@ -153,6 +154,31 @@ def test_random_stimuli(name):
         stim = random_stimulus(params, rng, rng.randint(200, 4000))
         # Every other case: the harness simulates each span it would skip and compares registers.
         check_same(params, stim, check_fast=case % 2 == 0)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_saturation_marks_through_quiet_spans(seed):
+    # Owed amounts saturate before taken, ignored and disarmed strobes and after the last
+    # one; the fast path must keep the saturation marks through every span it skips.
+    rng = random.Random(seed)  # fixed seeds whose runs cover the rule (checked): the same runs every time
+    stim = saturating_stimulus(BURST, rng, 3000)
+    assert_covers_the_rule(simulate(BURST, stim))
+    check_same(BURST, stim, check_fast=True)
+    fast = compiled.count_compiled(BURST, stim)
+    assert fast.skipped > 0  # quiet spans were skipped, so the marks were carried across them
+
+
+def test_saturation_counter_stops_at_its_limit():
+    # TERNARY has M = 1: a pin that toggles every cycle from 2 gives a strobe taken every
+    # other cycle, at 4, 6, 8... At -2048 per tick the owed amount (16 bits) reaches its
+    # bottom by cycle 17 and every later update saturates (a take hands at most one pulse of
+    # the 8 a tick brings), so each take from 18 on counts: more than 65535 of them by N.
+    n_cyc = 18 + 2 * 65536 + 1
+    stim = Stimulus(cycles=n_cyc, strobe_edges=tuple(range(2, n_cyc)), rate_changes=(RateChange(1, 0, -2048),))
+    got = compiled.run_compiled(TERNARY, stim)
+    assert got.status.strobes > 65536 and got.status.saturated and got.status.saturations == 65535
+    assert got.channels[0].owed == TERNARY.owed_min
+    check_same(TERNARY, stim)
 
 
 def test_fast_path_skips_and_agrees_with_plain_stepping():

@@ -14,11 +14,12 @@ import pytest
 from conftest import small_params
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from satkit import assert_covers_the_rule, saturating_stimulus
 
 from dvgate.config import load_config
 from dvgate.params import HardwareParams
 from dvgate.sim.books import conservation_errors
-from dvgate.sim.model import run_model
+from dvgate.sim.model import run_model, simulate
 from dvgate.sim.stimulus import periodic_strobe_edges
 from dvgate.sim.testbench import run_amaranth
 from dvgate.sim.trace import FaultChange, Faults, RateChange, Stimulus
@@ -137,6 +138,46 @@ def test_saturation_flagged(tmp_path):
     params = small_params(rest=0, init_rates=(2047,), clamp=1, owed_bits=4)
     stim = Stimulus(cycles=120, strobe_edges=strobes(120, 30, 2))
     assert run_amaranth(params, stim).status.saturated
+    assert_same(params, stim, tmp_path)
+
+
+# The saturation rule's hand-worked runs of tests/test_model.py, on the gateware: a mark
+# counted once at the next take, two stretches counted once, none after the last take, a
+# mark kept through an ignored and a disarmed strobe, the take's own cycle left to the next.
+SAT_RULE = {
+    "before a take": ((0,), Stimulus(cycles=60, strobe_edges=(20, 23, 40, 43),
+                                     rate_changes=(RateChange(5, 0, 2047), RateChange(8, 0, 0)))),
+    "two stretches": ((0,), Stimulus(cycles=60, strobe_edges=(0, 3, 20, 23, 40, 43),
+                                     rate_changes=(RateChange(5, 0, 2047), RateChange(8, 0, 0),
+                                                   RateChange(12, 0, -2048), RateChange(16, 0, 0)))),
+    "after the last take": ((0,), Stimulus(cycles=60, strobe_edges=(20, 23),
+                                           rate_changes=(RateChange(30, 0, 2047), RateChange(34, 0, 0)))),
+    "ignored and disarmed": ((0,), Stimulus(cycles=70, strobe_edges=(20, 23, 40, 43, 60, 63),
+                                            rate_changes=(RateChange(5, 0, 2047), RateChange(8, 0, 0)),
+                                            arm_changes=((0, True), (38, False), (48, True)),
+                                            ignore_windows=((20, 10),))),
+    "the take's own cycle": ((75,), Stimulus(cycles=44, strobe_edges=(20, 23, 40, 43),
+                                             rate_changes=(RateChange(23, 0, 2047), RateChange(24, 0, 0)))),
+}
+
+
+@pytest.mark.parametrize("case", list(SAT_RULE))
+def test_saturation_rule(case, tmp_path):
+    rates, stim = SAT_RULE[case]
+    params = small_params(owed_bits=4, clamp=2, rest=0, init_rates=rates)
+    want = {"before a take": 1, "two stretches": 1, "after the last take": 0, "ignored and disarmed": 1,
+            "the take's own cycle": 1}[case]
+    assert run_amaranth(params, stim).status.saturations == want
+    assert_same(params, stim, tmp_path)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_saturation_with_ignore_windows_and_disarming(seed, tmp_path):
+    rng = random.Random(seed)  # fixed seeds: the same runs every time
+    params = many(3, owed_bits=4, clamp=2, rest=rng.randint(0, 2), backlog=12,
+                  scheme=rng.choice(["burst", "binary", "ternary"]))
+    stim = saturating_stimulus(params, rng, 700)
+    assert_covers_the_rule(simulate(params, stim))
     assert_same(params, stim, tmp_path)
 
 
