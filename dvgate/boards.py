@@ -538,8 +538,8 @@ class BoardTop(Elaboratable):
         self._heartbeat = heartbeat
         self._link = link
         if link is None:
-            from dvgate.gateware.top import Emulator
-            self.core = self.emulator = Emulator(params)
+            from dvgate.gateware.shared_top import emulator_top
+            self.core = self.emulator = emulator_top(params)
         else:
             from dvgate.gateware.linked_top import LinkedTop
             self.core = LinkedTop(link)

@@ -8,6 +8,7 @@ gateware and the model use (:class:`dvgate.params.HardwareParams`).
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import math
 import re
@@ -28,7 +29,7 @@ from pydantic import (
 )
 
 from dvgate.errors import UserError
-from dvgate.params import HardwareParams
+from dvgate.params import SHARED_DEPTH, HardwareParams, shared_d_bits, shared_slots
 from dvgate.units import STANDARD_GRAVITY, QuantityError, parse_quantity
 
 M = TypeVar("M", bound=BaseModel)
@@ -141,6 +142,7 @@ class RateConfig(_Strict):
     clamp: int = Field(default=64, ge=1, le=65535)
     backlog: int = Field(default=256, ge=1, le=65535)
     owed_bits: int = Field(default=24, ge=4, le=40)
+    datapath: Literal["per_channel", "shared"] = "per_channel"
 
 
 class ChannelDefaults(_Strict):
@@ -346,11 +348,30 @@ class Config:
             backlog=m.rate.backlog,
             init_rates=tuple(self.rate_to_fixed(i, ch.rate) for i, ch in enumerate(self.channels)),
         )
+        if m.rate.datapath == "shared":
+            self._check_shared(params)
+            params = dataclasses.replace(params, datapath="shared")
         period = self.cycles("strobe.period", m.strobe.period)
         if period <= params.min_width_cyc:
             _fail("strobe.period", m.strobe.period.text,
                   f"longer than the strobe's minimum width ({params.min_width_cyc} cycles)")
         return params
+
+    def _check_shared(self, params: HardwareParams) -> None:
+        """The shared datapath's limits, as messages about the config's own fields."""
+        m = self.model
+        if m.link:
+            _fail("rate.datapath", "shared", "'per_channel' with a [link] section: the host link writes "
+                  "rates, and the shared datapath keeps every channel at its config rate")
+        need = shared_slots(params.n) + SHARED_DEPTH
+        if params.min_width_cyc < need:
+            _fail("strobe.min_width", m.strobe.min_width.text,
+                  f"at least {need} cycles ({need * 1e9 / self.clock_hz:.4g} ns at this clock) with "
+                  f"rate.datapath = 'shared' and {params.n} channel(s): every channel is visited while "
+                  "the glitch filter holds the strobe")
+        least = ((1 << shared_d_bits(params.n)) + params.clamp).bit_length() + 1
+        if params.owed_bits < least:
+            _fail("rate.owed_bits", str(params.owed_bits), f"at least {least} with rate.datapath = 'shared'")
 
     @cached_property
     def strobe_period_cyc(self) -> int:

@@ -16,6 +16,11 @@ OUTPUT_CYC = 1
 
 SCHEMES = ("binary", "ternary", "burst")
 ORDERS = ("interleaved", "grouped")
+#: How the owed amounts are computed: a datapath per channel, or one shared by all of
+#: them in turn (``dvgate.gateware.shared_owed``; constant rates only).
+DATAPATHS = ("per_channel", "shared")
+#: Cycles from a visit of the shared datapath to its hand-over being ready.
+SHARED_DEPTH = 7
 
 #: Width of the strobe counter, the strobe period and the since-last-strobe timer.
 STROBE_COUNT_BITS = 32
@@ -25,6 +30,16 @@ EVENT_COUNT_BITS = 16
 STORM_PERIOD_BITS = 16
 #: Width of the ignore-strobes window, in cycles.
 IGNORE_CYCLES_BITS = 32
+
+
+def shared_slots(n: int) -> int:
+    """Cycles between two visits of one channel by the shared datapath, for ``n`` channels."""
+    return max(n, SHARED_DEPTH)
+
+
+def shared_d_bits(n: int) -> int:
+    """Width of the step (in cycles, at most three slots) one visit of the shared datapath makes."""
+    return (3 * shared_slots(n)).bit_length()
 
 
 @dataclass(frozen=True)
@@ -65,6 +80,11 @@ class HardwareParams:
         Most pulses waiting in an emitter; a hand-over that would pass it is deferred.
     init_rates : tuple of int
         Rate of each channel at reset, fixed point (pulses per tick times ``2**frac_bits``).
+    datapath : str
+        ``"per_channel"`` or ``"shared"`` (see :data:`DATAPATHS`). The shared datapath
+        keeps every channel at its initial rate, takes the ``arm`` input
+        :attr:`arm_lead` cycles ahead and needs arm changes :attr:`arm_spacing` cycles
+        apart and a glitch filter of at least ``shared_slots + SHARED_DEPTH`` cycles.
     """
 
     clock_hz: float
@@ -84,6 +104,7 @@ class HardwareParams:
     clamp: int
     backlog: int
     init_rates: tuple[int, ...] = field(default=())
+    datapath: str = "per_channel"
 
     def __post_init__(self) -> None:
         checks = [
@@ -111,6 +132,45 @@ class HardwareParams:
         for name, rate in zip(self.names, self.rates, strict=True):
             if not self.rate_min <= rate <= self.rate_max:
                 raise ValueError(f"initial rate of channel {name!r} ({rate}) does not fit {self.rate_bits} bits")
+        if self.datapath not in DATAPATHS:
+            raise ValueError(f"datapath must be one of {DATAPATHS}, not {self.datapath!r}")
+        if self.datapath == "shared":
+            self._check_shared()
+
+    def _check_shared(self) -> None:
+        """The shared datapath's own limits (``dvgate.gateware.shared_owed``)."""
+        need = self.shared_slots + SHARED_DEPTH
+        if self.min_width_cyc < need:
+            raise ValueError(f"the shared datapath needs a glitch filter (min_width) of at least {need} cycles "
+                             f"for {self.n} channel(s), not {self.min_width_cyc}: every channel is visited "
+                             "while the filter holds the strobe")
+        for name, rate in zip(self.names, self.rates, strict=True):
+            if abs(rate) > 1 << self.frac_bits:
+                raise ValueError(f"the shared datapath needs rates of at most one pulse per cycle; channel {name!r} "
+                                 f"has {rate / (1 << self.frac_bits):.6g}")
+        if (1 << self.shared_d_bits) + self.clamp >= 1 << (self.owed_bits - 1):
+            raise ValueError(f"the shared datapath needs owed_bits of at least "
+                             f"{((1 << self.shared_d_bits) + self.clamp).bit_length() + 1}, not {self.owed_bits}")
+
+    @property
+    def shared_slots(self) -> int:
+        """Cycles between two visits of one channel by the shared datapath."""
+        return shared_slots(self.n)
+
+    @property
+    def shared_d_bits(self) -> int:
+        """Width of the step one visit of the shared datapath makes (:func:`shared_d_bits`)."""
+        return shared_d_bits(self.n)
+
+    @property
+    def arm_lead(self) -> int:
+        """Cycles ahead of the model's ``arm`` input at which the gateware's ``arm`` port is driven."""
+        return self.shared_slots + SHARED_DEPTH if self.datapath == "shared" else 0
+
+    @property
+    def arm_spacing(self) -> int:
+        """Least number of cycles between two changes of ``arm`` the gateware follows exactly."""
+        return 4 * self.shared_slots + 2 * SHARED_DEPTH if self.datapath == "shared" else 1
 
     @property
     def n(self) -> int:

@@ -92,6 +92,83 @@ def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal,
     return clipped
 
 
+def check_names(params: HardwareParams) -> None:
+    """Refuse channel names that cannot name ports, or that repeat."""
+    names = params.names
+    for name in names:
+        if not _NAME_RE.match(name):
+            raise ValueError(
+                f"channel name {name!r} cannot name a port: use a letter, then letters, "
+                "digits or '_'")
+    if len(set(names)) != len(names):
+        raise ValueError(f"channel names must differ, not {list(names)!r}")
+
+
+def port_members(params: HardwareParams, *, rates: bool = True) -> dict[str, wiring.Member]:
+    """The signature members of an emulator top, in port order (see :class:`Emulator`).
+
+    Parameters
+    ----------
+    params : HardwareParams
+        The emulator.
+    rates : bool
+        Include the rate register port (``rate_*``); the shared datapath has none.
+    """
+    members = {"strobe": In(1), "arm": In(1)}
+    if rates:
+        members.update({
+            "rate_addr": In(addr_bits(params)),
+            "rate_data": In(signed(params.rate_bits)),
+            "rate_we": In(1),
+            "rate_commit": In(1),
+        })
+    members.update({
+        "fault_addr": In(addr_bits(params)),
+        "fault_data": In(FaultLayout),
+        "fault_we": In(1),
+        "ignore_we": In(1),
+        "ignore_cycles": In(IGNORE_CYCLES_BITS),
+    })
+    for name in params.names:
+        members[f"{name}_pos"] = Out(1)
+        members[f"{name}_neg"] = Out(1)
+    members.update({
+        "strobes": Out(STROBE_COUNT_BITS),
+        "period": Out(STROBE_COUNT_BITS),
+        "host_absent": Out(1),
+        "flags": Out(StatusFlags),
+        "overruns": Out(EVENT_COUNT_BITS),
+        "clamps": Out(EVENT_COUNT_BITS),
+        "deferrals": Out(EVENT_COUNT_BITS),
+        "saturations": Out(EVENT_COUNT_BITS),
+        "ignored": Out(EVENT_COUNT_BITS),
+    })
+    return members
+
+
+def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> Signal:
+    """The ignore window of a top (its ``ignore_we``/``ignore_cycles`` ports) and its ``ignored`` count.
+
+    The window counts down the cycles left; a write replaces it. Strobes detected in it
+    are counted (16 bits, saturating), armed or not.
+
+    Returns
+    -------
+    Signal(1)
+        The window is open this cycle: a strobe now is not taken.
+    """
+    ignore_left = Signal(IGNORE_CYCLES_BITS, name="ignore_left")
+    ignoring    = Signal()
+    m.d.comb += ignoring.eq(ignore_left != 0)
+    with m.If(top.ignore_we):
+        m.d.sync += ignore_left.eq(top.ignore_cycles)
+    with m.Elif(ignoring):
+        m.d.sync += ignore_left.eq(ignore_left - 1)
+    with m.If(stb & ignoring & (top.ignored != _EVENT_MAX)):
+        m.d.sync += top.ignored.eq(top.ignored + 1)
+    return ignoring
+
+
 class Emulator(wiring.Component):
     """Pulse-output accelerometer emulator for ``params.n`` channels.
 
@@ -157,53 +234,18 @@ class Emulator(wiring.Component):
     """
 
     def __init__(self, params: HardwareParams) -> None:
-        names = params.names
-        for name in names:
-            if not _NAME_RE.match(name):
-                raise ValueError(
-                    f"channel name {name!r} cannot name a port: use a letter, then letters, "
-                    "digits or '_'")
-        if len(set(names)) != len(names):
-            raise ValueError(f"channel names must differ, not {list(names)!r}")
+        check_names(params)
         self._params = params
-
-        members = {
-            "strobe": In(1),
-            "arm": In(1),
-            "rate_addr": In(addr_bits(params)),
-            "rate_data": In(signed(params.rate_bits)),
-            "rate_we": In(1),
-            "rate_commit": In(1),
-            "fault_addr": In(addr_bits(params)),
-            "fault_data": In(FaultLayout),
-            "fault_we": In(1),
-            "ignore_we": In(1),
-            "ignore_cycles": In(IGNORE_CYCLES_BITS),
-        }
-        for name in names:
-            members[f"{name}_pos"] = Out(1)
-            members[f"{name}_neg"] = Out(1)
-        members.update({
-            "strobes": Out(STROBE_COUNT_BITS),
-            "period": Out(STROBE_COUNT_BITS),
-            "host_absent": Out(1),
-            "flags": Out(StatusFlags),
-            "overruns": Out(EVENT_COUNT_BITS),
-            "clamps": Out(EVENT_COUNT_BITS),
-            "deferrals": Out(EVENT_COUNT_BITS),
-            "saturations": Out(EVENT_COUNT_BITS),
-            "ignored": Out(EVENT_COUNT_BITS),
-        })
-        super().__init__(members)
+        super().__init__(port_members(params))
 
         # Built here, not in elaborate(), so testbenches can reach their signals.
         self.detector = StrobeDetector(edge_rising=params.edge_rising,
                                        min_width_cyc=params.min_width_cyc,
                                        absence_cyc=params.absence_cyc)
         self.rate_regs = RateRegisters(params)
-        self.accumulators = [RateAccumulator(params) for _ in names]
-        self.emitters = [PulseEmitter(params) for _ in names]
-        self.fault_stages = [FaultStage(params) for _ in names]
+        self.accumulators = [RateAccumulator(params) for _ in params.names]
+        self.emitters = [PulseEmitter(params) for _ in params.names]
+        self.fault_stages = [FaultStage(params) for _ in params.names]
 
     def output_ports(self, channel: int) -> tuple[Signal, Signal]:
         """The physical ``(pos, neg)`` output ports of channel ``channel``."""
@@ -220,8 +262,7 @@ class Emulator(wiring.Component):
         armed       = Signal()
         stb         = Signal()
         take        = Signal()
-        ignore_left = Signal(IGNORE_CYCLES_BITS)
-        ignoring    = Signal()
+        ignoring    = ignore_logic(m, self, det.stb)
         overrun     = Signal(p.n)
         clamped     = Signal(p.n)
         deferred    = Signal(p.n)
@@ -231,7 +272,6 @@ class Emulator(wiring.Component):
         m.d.comb += [
             det.pin.eq(self.strobe),
             stb.eq(det.stb),
-            ignoring.eq(ignore_left != 0),
             take.eq(stb & armed & ~ignoring),
             self.strobes.eq(det.strobes),
             self.period.eq(det.period),
@@ -241,14 +281,6 @@ class Emulator(wiring.Component):
             regs.we.eq(self.rate_we),
             regs.commit.eq(self.rate_commit),
         ]
-
-        # The window counts down the cycles left; a write replaces it.
-        with m.If(self.ignore_we):
-            m.d.sync += ignore_left.eq(self.ignore_cycles)
-        with m.Elif(ignoring):
-            m.d.sync += ignore_left.eq(ignore_left - 1)
-        with m.If(stb & ignoring & (self.ignored != _EVENT_MAX)):
-            m.d.sync += self.ignored.eq(self.ignored + 1)
 
         for i, (name, acc, em, fs) in enumerate(zip(p.names, self.accumulators, self.emitters,
                                                     self.fault_stages, strict=True)):

@@ -21,8 +21,8 @@ from amaranth.lib import wiring
 from amaranth.sim import Simulator
 
 from dvgate.gateware.faults import pack_faults
-from dvgate.gateware.top import Emulator
-from dvgate.params import IGNORE_CYCLES_BITS, HardwareParams
+from dvgate.gateware.shared_top import emulator_top
+from dvgate.params import IGNORE_CYCLES_BITS, SHARED_DEPTH, HardwareParams
 from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RateChange, RateChanges, RunResult, Status, Stimulus
 
 __all__ = ["PLAN_PORTS", "InputWrites", "edges_from_levels", "input_plan", "input_writes", "run_amaranth",
@@ -138,16 +138,24 @@ def input_writes(params: HardwareParams, stim: Stimulus, *, strobe: bool = True)
     defaults: _Entries = []
     idle = 0 if params.edge_rising else 1
     at_reset = np.zeros(1, np.int64)
-    sets += [(at_reset, _PORT["strobe"], idle), (at_reset, _PORT["arm"], 0), (at_reset, _PORT["rate_we"], 0),
-             (at_reset, _PORT["rate_commit"], 0)]
+    shared = params.datapath == "shared"
+    sets += [(at_reset, _PORT["strobe"], idle), (at_reset, _PORT["arm"], 0)]
+    if not shared:
+        sets += [(at_reset, _PORT["rate_we"], 0), (at_reset, _PORT["rate_commit"], 0)]
     if strobe:
         edges = np.asarray(stim.strobe_edges, dtype=np.int64)
         edges = edges[edges < n_cyc]
         sets.append((edges, _PORT["strobe"], idle ^ ((np.arange(len(edges), dtype=np.int64) + 1) & 1)))
-    arm = [(max(cycle, 0), int(bool(level))) for cycle, level in stim.arm_changes if cycle < n_cyc]
+    arm = _plan_arm(params, stim)
     if arm:
         sets.append((np.array([c for c, _ in arm], np.int64), _PORT["arm"], np.array([v for _, v in arm], np.int64)))
-    _plan_rates(params, stim, sets, defaults)
+    if shared:
+        if len(stim.rate_changes):
+            first = stim.rate_changes[0]
+            raise ValueError(f"rate change at cycle {first.cycle}: the shared datapath keeps every channel at its "
+                             "config rate; use datapath 'per_channel' to change rates")
+    else:
+        _plan_rates(params, stim, sets, defaults)
     _plan_faults(params, stim, sets, defaults)
     _plan_ignores(stim, sets, defaults)
 
@@ -168,6 +176,34 @@ def input_writes(params: HardwareParams, stim: Stimulus, *, strobe: bool = True)
     last = np.ones(len(key), dtype=bool)
     np.not_equal(key[1:], key[:-1], out=last[:-1])
     return InputWrites(key[last] >> 4, (key[last] & 15).astype(np.int8), value[order[last]])
+
+
+def _plan_arm(params: HardwareParams, stim: Stimulus) -> list[tuple[int, int]]:
+    """Writes of the ``arm`` port: at the change's cycle, or ``arm_lead`` cycles before it.
+
+    The shared datapath takes ``arm`` ahead (``HardwareParams.arm_lead``) and follows
+    changes exactly when they are ``arm_spacing`` cycles apart; a change it cannot follow
+    is refused.
+    """
+    lead, spacing = params.arm_lead, params.arm_spacing
+    out: list[tuple[int, int]] = []
+    level, last = 0, None
+    for cycle, value in stim.arm_changes:
+        value = int(bool(value))
+        if cycle >= stim.cycles:
+            break
+        if lead and value != level:
+            if cycle < lead:
+                raise ValueError(f"arm change at cycle {cycle}: the shared datapath takes arm {lead} cycles "
+                                 f"ahead, so the first change can come at cycle {lead}")
+            if last is not None and cycle - last < spacing:
+                raise ValueError(f"arm changes at cycles {last} and {cycle}: the shared datapath needs them "
+                                 f"at least {spacing} cycles apart")
+            last = cycle
+        level = value
+        if cycle - lead >= 0 or value:
+            out.append((max(cycle - lead, 0), value))
+    return out
 
 
 def _check_rate_change(params: HardwareParams, change: RateChange) -> None:
@@ -307,23 +343,29 @@ def edges_from_levels(changes: list[tuple[int, tuple[int, ...]]], n_lines: int,
 
 
 def run_amaranth(params: HardwareParams, stim: Stimulus, *,
-                 vcd_path: str | Path | None = None) -> RunResult:
+                 vcd_path: str | Path | None = None,
+                 anchors: list[tuple[int, int] | None] | None = None) -> RunResult:
     """Simulate the gateware on ``stim`` and return what it did.
 
     Parameters
     ----------
     params : HardwareParams
-        The emulator.
+        The emulator (its ``datapath`` chooses the top).
     stim : Stimulus
         Strobe edges, rate changes and arm changes for cycles ``0 .. N-1``.
     vcd_path : str or Path, optional
         Write the waveforms (every signal of the design) to this VCD file.
+    anchors : list, optional
+        Shared datapath only: filled with, per channel, ``(cycle, owed)``, the owed amount
+        the datapath holds for that cycle (its last anchor, which may lie a few cycles
+        past ``N``), or None while a visit is writing the channel's words at ``N``.
 
     Returns
     -------
     RunResult
         Every logical pulse seen on cycles ``1 .. N``, sorted; the status and each
-        channel's owed amount and pending pulses at cycle ``N``.
+        channel's owed amount and pending pulses at cycle ``N``. The shared datapath has
+        no owed register: its ``owed`` is None (see ``anchors``).
 
     Raises
     ------
@@ -331,7 +373,7 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
         If the rate changes cannot be written through the register port in time.
     """
     plan_by_name = input_plan(params, stim)  # before building: it may raise
-    top = Emulator(params)
+    top = emulator_top(params)
     # Value.cast: fault_data is a struct view; the plan holds its packed bits.
     plan = [(at, [(Value.cast(getattr(top, name)), value) for name, value in values.items()])
             for at, values in plan_by_name.items()]
@@ -372,10 +414,17 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
             saturations=ctx.get(top.saturations),
             ignored=ctx.get(top.ignored),
         )
-        results["channels"] = tuple(
-            ChannelState(owed=ctx.get(acc.owed), pend_pos=ctx.get(em.pend_pos),
-                         pend_neg=ctx.get(em.pend_neg))
-            for acc, em in zip(top.accumulators, top.emitters, strict=True))
+        if params.datapath == "shared":
+            results["channels"] = tuple(
+                ChannelState(owed=None, pend_pos=ctx.get(em.pend_pos), pend_neg=ctx.get(em.pend_neg))
+                for em in top.emitters)
+            if anchors is not None:
+                anchors[:] = _shared_anchors(ctx, top, params, n_cyc)
+        else:
+            results["channels"] = tuple(
+                ChannelState(owed=ctx.get(acc.owed), pend_pos=ctx.get(em.pend_pos),
+                             pend_neg=ctx.get(em.pend_neg))
+                for acc, em in zip(top.accumulators, top.emitters, strict=True))
         results["cycle"] = ctx.get(cycle)
 
     async def watch(ctx) -> None:
@@ -401,6 +450,30 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
         status=results["status"],
         channels=results["channels"],
     )
+
+
+def _shared_anchors(ctx, top, params: HardwareParams, n_cyc: int) -> list[tuple[int, int] | None]:
+    """Per channel, the anchor cycle and owed amount the shared datapath's block RAMs hold."""
+    from dvgate.gateware.shared_owed import LOWER, RAW, UPPER, ZERO, chunks, cycle_bits
+
+    owed = top.owed
+    slots, cb = params.shared_slots, cycle_bits(params)
+    l1, frac = chunks(params)
+    out: list[tuple[int, int] | None] = []
+    for i in range(params.n):
+        # The visit at v writes the channel's words at cycles v + 1 .. v + SHARED_DEPTH - 1.
+        if 2 <= (n_cyc - i) % slots <= SHARED_DEPTH - 1 and n_cyc >= i + 2:
+            out.append(None)
+            continue
+        a_mod = ctx.get(owed.anchor.data[i]) & ((1 << cb) - 1)
+        cycle = n_cyc + ((a_mod - n_cyc + (1 << (cb - 1))) % (1 << cb)) - (1 << (cb - 1))
+        code = ctx.get(owed.handed.data[i]) & 3
+        whole = ctx.get(owed.owed_whole.data[i])
+        whole -= (whole >> (params.owed_bits - 1)) << params.owed_bits
+        raw = ctx.get(owed.owed_lo.data[i]) | (ctx.get(owed.owed_mid.data[i]) << l1) | (whole << frac)
+        value = {RAW: raw, ZERO: 0, UPPER: params.owed_max, LOWER: params.owed_min}[code]
+        out.append((cycle, value))
+    return out
 
 
 def _member(dut: wiring.Component, path: str):

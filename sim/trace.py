@@ -343,13 +343,14 @@ class ChannelState:
 
     Attributes
     ----------
-    owed : int
-        The owed amount, fixed point.
+    owed : int or None
+        The owed amount, fixed point; None from the shared datapath, which keeps no owed
+        register (``run_amaranth``'s ``anchors`` gives what it holds).
     pend_pos, pend_neg : int
         Pulses waiting in the emitter on each line.
     """
 
-    owed: int
+    owed: int | None
     pend_pos: int
     pend_neg: int
 

@@ -1,0 +1,450 @@
+"""Shared owed datapath: one pipeline computes every channel's hand-over in turn.
+
+The per-channel design adds each rate to its owed register every cycle. Here the owed
+amounts live in block RAM and one pipeline visits channel ``i`` at every cycle
+``v == i (mod P)`` (``P = params.shared_slots``), moving the channel's owed amount from
+its last *anchor* cycle ``a`` to a *target* cycle ``t`` in one step. Cycle rules:
+``docs/timing.md``; the step, exactly as the model's cycle-by-cycle rule gives it:
+
+- The rates are constant (the config's), so between two events the owed amount moves in
+  one direction and the per-cycle saturation is a clip of the end value:
+  ``owed(t) = clip(X + (t - a) * rate)``, with ``(t - a) * rate`` read from a table in
+  block RAM (a constant per channel and step length).
+- A hand-over of ``n`` accepted at the anchor strobe ``a`` subtracts ``n * 2**F`` first.
+  That first step cannot pass a limit (a rate is at most one pulse per cycle and ``n``
+  has the sign of the owed amount), so ``owed(t) = clip(X - n * 2**F + (t - a) * rate)``.
+- While disarmed the owed amount is 0; arming at ``e`` restarts it from 0 at ``e``.
+  The ``armed_ahead`` input is ``armed`` :attr:`HardwareParams.arm_lead` cycles ahead, and
+  arm changes are at least :attr:`HardwareParams.arm_spacing` cycles apart, so a visit
+  sees at most one change between its anchor and the newest armed value it knows.
+
+The visit at ``v`` serves the *window* of cycles ``[v + Q, v + P + Q)`` (``Q`` =
+:data:`SHARED_DEPTH`): its target is the strobe in that window when the detector has one
+in view (``ahead``), else ``v + P + Q``. Windows of one channel tile the time line, and a
+strobe in a window is in view at the visit (the glitch filter lasts at least ``P + Q``
+cycles), so every strobe is the target of one visit per channel, whose hand-over
+(``hand_n``) is ready ``Q`` cycles after the visit. A strobe in view that never comes (the
+pin fell) is a target nothing is handed over at. Whether a strobe's hand-over was accepted
+is only known at the strobe; a visit whose anchor strobe is still ahead leaves the channel
+alone (the next visit, ``P`` cycles later, moves it on).
+
+The saturation a visit finds (the end value past a limit) is reported as a pulse on
+``clip``, before the strobe that ends its stretch: the status counts saturations per
+taken strobe (``docs/timing.md``, "Status").
+
+The owed amount is stored raw, in three chunks that a skewed adder updates one per cycle,
+with a code saying whether it is to be read as raw, 0, or the upper or lower limit, so no
+clip is applied to the stored bits.
+"""
+
+from __future__ import annotations
+
+from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
+from amaranth.lib import data, memory, wiring
+from amaranth.lib.wiring import In, Out
+
+from dvgate.gateware.accumulator import ask_logic, net_shape
+from dvgate.params import SHARED_DEPTH, HardwareParams
+
+#: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
+RAW, ZERO, UPPER, LOWER = 0, 1, 2, 3
+#: Block RAM, and no read-during-write logic: a channel's words are never read in a cycle
+#: that writes them (see the module docstring).
+_RAM_ATTRS = {"ram_style": "block", "no_rw_check": 1}
+
+
+def cycle_bits(params: HardwareParams) -> int:
+    """Width of the cycle numbers of anchors and targets (kept modulo ``2**width``)."""
+    return (8 * params.shared_slots + 4 * SHARED_DEPTH).bit_length() + 1
+
+
+def chunks(params: HardwareParams) -> tuple[int, int]:
+    """Bit boundaries of the owed amount's low, middle and whole chunks: ``(L1, F)``."""
+    return params.frac_bits // 2, params.frac_bits
+
+
+def step_table(params: HardwareParams) -> tuple[list[int], list[int], list[int]]:
+    """The products ``d * rate`` of every channel and step, split into the adder's chunks.
+
+    Returns
+    -------
+    tuple of list of int
+        Low, middle and whole chunks (the whole chunk in two's complement of
+        ``shared_d_bits + 2`` bits) at address ``channel * 2**shared_d_bits + d``.
+    """
+    l1, frac = chunks(params)
+    width = params.shared_d_bits + 2
+    lo, mid, whole = [], [], []
+    for rate in params.rates:
+        for d in range(1 << params.shared_d_bits):
+            product = d * rate
+            lo.append(product & ((1 << l1) - 1))
+            mid.append((product >> l1) & ((1 << (frac - l1)) - 1))
+            whole.append((product >> frac) & ((1 << width) - 1))
+    return lo, mid, whole
+
+
+class SharedOwed(wiring.Component):
+    """The owed amounts of every channel, and the count each strobe takes, in one pipeline.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        With ``datapath == "shared"`` (its checks hold: window, rates, widths).
+
+    Attributes
+    ----------
+    ahead_valid, ahead : in
+        From the strobe detector: a strobe comes ``ahead`` cycles from now if the
+        synchronized strobe stays active.
+    armed_ahead : Signal(1), in
+        ``armed`` of cycle ``k + arm_lead`` (the arm input, delayed to that point).
+    load : Signal(n), in
+        Per channel: the hand-over of this cycle's strobe is accepted (``take & accept``).
+    hand_n : ArrayLayout(net_shape, n), out
+        Per channel: what the next strobe asks for (registers, ready ``SHARED_DEPTH``
+        cycles after the visit that targets the strobe).
+    hand_clmp : Signal(n), out
+        Per channel: ``hand_n`` was clamped (burst).
+    clip : Signal(n), out
+        Per channel: this cycle, a visit found that the channel's owed amount saturated
+        in its stretch (one-cycle pulse).
+    """
+
+    def __init__(self, params: HardwareParams) -> None:
+        if params.datapath != "shared":
+            raise ValueError("SharedOwed needs params with datapath 'shared'")
+        self._params = params
+        super().__init__({
+            "ahead_valid": In(1),
+            "ahead": In(range(max(2, params.min_width_cyc))),
+            "armed_ahead": In(1),
+            "load": In(params.n),
+            "hand_n": Out(data.ArrayLayout(net_shape(params), params.n)),
+            "hand_clmp": Out(params.n),
+            "clip": Out(params.n),
+        })
+        l1, frac = chunks(params)
+        cb = cycle_bits(params)
+        depth = params.n << params.shared_d_bits
+        lo, mid, whole = step_table(params)
+        # Tables of d * rate, and the stored state (anchor cycle and kind; code and hand-over;
+        # the owed amount's three chunks), one word per channel.
+        self.step_lo = memory.Memory(shape=l1, depth=depth, init=lo, attrs=_RAM_ATTRS)
+        self.step_mid = memory.Memory(shape=frac - l1, depth=depth, init=mid, attrs=_RAM_ATTRS)
+        self.step_whole = memory.Memory(shape=params.shared_d_bits + 2, depth=depth, init=whole,
+                                        attrs=_RAM_ATTRS)
+        self.anchor = memory.Memory(shape=cb + 1, depth=params.n, init=[], attrs=_RAM_ATTRS)
+        self.handed = memory.Memory(shape=2 + net_shape(params).width, depth=params.n, init=[],
+                                    attrs=_RAM_ATTRS)
+        self.owed_lo = memory.Memory(shape=l1, depth=params.n, init=[], attrs=_RAM_ATTRS)
+        self.owed_mid = memory.Memory(shape=frac - l1, depth=params.n, init=[], attrs=_RAM_ATTRS)
+        self.owed_whole = memory.Memory(shape=params.owed_bits, depth=params.n, init=[], attrs=_RAM_ATTRS)
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        p = self._params
+        n, slots, q = p.n, p.shared_slots, SHARED_DEPTH
+        lead, cap = p.arm_lead, p.arm_spacing
+        l1, frac = chunks(p)
+        cb = cycle_bits(p)
+        d_bits = p.shared_d_bits
+        nshape = net_shape(p)
+
+        for name in ("step_lo", "step_mid", "step_whole", "anchor", "handed", "owed_lo", "owed_mid",
+                     "owed_whole"):
+            m.submodules[name] = getattr(self, name)
+        anchor_rd, anchor_wr = self.anchor.read_port(transparent_for=()), self.anchor.write_port()
+        handed_rd, handed_wr = self.handed.read_port(transparent_for=()), self.handed.write_port()
+        lo_rd, lo_wr = self.owed_lo.read_port(transparent_for=()), self.owed_lo.write_port()
+        mid_rd, mid_wr = self.owed_mid.read_port(transparent_for=()), self.owed_mid.write_port()
+        whole_rd, whole_wr = self.owed_whole.read_port(transparent_for=()), self.owed_whole.write_port()
+        step_lo_rd = self.step_lo.read_port(transparent_for=())
+        step_mid_rd = self.step_mid.read_port(transparent_for=())
+        step_whole_rd = self.step_whole.read_port(transparent_for=())
+
+        # Accepted hand-overs wait here for the visit that moves past their strobe.
+        loaded = Signal(n)
+
+        # --- counters: the cycle number and the cycles a visit looks ahead to ------------
+        # Kept as registers so that no stage adds an offset to a cycle number first.
+        now     = Signal(cb)
+        now_end = Signal(cb, init=slots + q)            # v + P + Q: a window's end
+        now_stb = Signal(cb, init=p.min_width_cyc - 1)  # where a strobe starting now would come
+        now_arm = Signal(cb, init=lead)                 # the cycle armed_ahead speaks of
+        m.d.sync += [now.eq(now + 1), now_end.eq(now_end + 1), now_stb.eq(now_stb + 1), now_arm.eq(now_arm + 1)]
+
+        # --- the strobe in view: the cycle it comes, fixed when the filter starts counting
+        stb_at = Signal(cb)
+        with m.If(self.ahead_valid & (self.ahead == p.min_width_cyc - 1)):
+            m.d.sync += stb_at.eq(now_stb)
+
+        # --- the arm tracker: the newest armed value, where it changed, and how long ago --
+        prev_armed = Signal()
+        change_at  = Signal(cb)
+        age        = Signal(range(cap + 1), init=cap)
+        changed    = self.armed_ahead != prev_armed
+        m.d.sync += [
+            prev_armed.eq(self.armed_ahead),
+            age.eq(Mux(changed, 1, Mux(age == cap, cap, age + 1))),
+        ]
+        with m.If(changed):
+            m.d.sync += change_at.eq(now_arm)
+
+        # --- stage 0 (cycle v): the slot and its target --------------------------------------
+        slot = Signal(range(slots))
+        m.d.sync += slot.eq(Mux(slot == slots - 1, 0, slot + 1))
+        in_window = Signal()
+        view_at   = Signal(cb)
+        m.d.comb += [
+            # The cycle of the strobe in view; on the filter's first active cycle ``stb_at``
+            # is being set, so take its new value.
+            view_at.eq(Mux(self.ahead == p.min_width_cyc - 1, now_stb, stb_at)),
+            # A strobe in view at least Q cycles ahead and inside this visit's window.
+            in_window.eq(self.ahead_valid & (self.ahead >= q) & (self.ahead < slots + q)),
+            anchor_rd.addr.eq(slot),
+        ]
+        s1_valid = Signal()
+        s1_slot  = Signal(range(slots))
+        s1_next  = Signal(cb)
+        s1_t     = Signal(cb)
+        s1_stb   = Signal()
+        s1_e     = Signal(cb)
+        s1_old   = Signal()
+        s1_lvl   = Signal()
+        s1_view  = Signal(cb)
+        s1_view_ok = Signal()
+        m.d.sync += [
+            s1_valid.eq(slot < n),
+            s1_slot.eq(slot),
+            s1_next.eq(now + 1),
+            s1_t.eq(Mux(in_window, view_at, now_end)),
+            s1_view.eq(view_at),
+            s1_view_ok.eq(self.ahead_valid),
+            s1_stb.eq(in_window),
+            # The newest level holds from ``change_at`` (this cycle's change included).
+            s1_e.eq(Mux(changed, now_arm, change_at)),
+            s1_old.eq(~changed & (age == cap)),
+            s1_lvl.eq(self.armed_ahead),
+        ]
+
+        # --- stage 1: the anchor against the target and the arm change (one subtraction
+        # each, side by side) ------------------------------------------------------------
+        a_abs  = anchor_rd.data[:cb]
+        at_stb = anchor_rd.data[cb]
+        diff_ta = Signal(cb)   # t - a
+        diff_ea = Signal(cb)   # e - a
+        diff_te = Signal(cb)   # t - e
+        diff_an = Signal(cb)   # a - (v + 1)
+        m.d.comb += [
+            diff_ta.eq(s1_t - a_abs),
+            diff_ea.eq(s1_e - a_abs),
+            diff_te.eq(s1_t - s1_e),
+            diff_an.eq(a_abs - s1_next),
+            anchor_wr.addr.eq(s1_slot),
+            anchor_wr.data.eq(Cat(s1_t, s1_stb)),
+        ]
+        # The anchor's strobe is still ahead and still in view: its hand-over is not decided
+        # yet. (A strobe in view that is no longer the one ahead will not come: nothing is
+        # handed over at it, and a new strobe may already be in this visit's window.)
+        skip = at_stb & ~diff_an[-1] & s1_view_ok & (s1_view == a_abs)
+        m.d.comb += anchor_wr.en.eq(s1_valid & ~skip)
+        r_valid  = Signal()
+        r_slot   = Signal.like(s1_slot)
+        r_stb    = Signal()
+        r_at_stb = Signal()
+        r_before = Signal()
+        r_after  = Signal()
+        r_lvl    = Signal()
+        r_d_ta   = Signal(d_bits)
+        r_d_ea   = Signal(d_bits)
+        r_d_te   = Signal(d_bits)
+        m.d.sync += [
+            r_valid.eq(s1_valid & ~skip),
+            r_slot.eq(s1_slot),
+            r_stb.eq(s1_stb),
+            r_at_stb.eq(at_stb),
+            # The change is at or before the anchor (or long ago); at or after the target.
+            r_before.eq(s1_old | diff_ea[-1] | (diff_ea == 0)),
+            r_after.eq(~s1_old & (diff_te[-1] | (diff_te == 0))),
+            r_lvl.eq(s1_lvl),
+            r_d_ta.eq(diff_ta),
+            r_d_ea.eq(diff_ea),
+            r_d_te.eq(diff_te),
+        ]
+
+        # --- stage 2: arming inside the step; the step's length ----------------------------
+        rise_in = Signal()
+        fall_in = Signal()
+        dis_all = Signal()
+        zero    = Signal()
+        d_eff   = Signal(d_bits)
+        m.d.comb += [
+            rise_in.eq(~r_before & ~r_after & r_lvl),
+            fall_in.eq(~r_before & ~r_after & ~r_lvl),
+            dis_all.eq((r_before & ~r_lvl) | (r_after & r_lvl)),
+            # Disarmed on the step's last cycle: the owed amount at the target is 0. A fall
+            # inside the step still adds the armed cycles before it, to see a saturation.
+            zero.eq(dis_all | fall_in),
+            d_eff.eq(Mux(rise_in, r_d_te, Mux(fall_in, r_d_ea, r_d_ta))),
+            step_lo_rd.addr.eq(Cat(d_eff, r_slot)),
+            lo_rd.addr.eq(r_slot),
+            handed_rd.addr.eq(r_slot),
+        ]
+        use_hand = Signal()
+        m.d.comb += use_hand.eq(loaded.bit_select(r_slot, 1) & r_at_stb & ~rise_in)
+        consumed = Signal(n)
+        m.d.comb += consumed.eq(Mux(r_valid, 1 << r_slot, 0))
+        # A load of this cycle wins over the visit that consumes the previous one.
+        m.d.sync += loaded.eq((loaded & ~consumed) | self.load)
+
+        s2_valid = Signal()
+        s2_slot  = Signal.like(s1_slot)
+        s2_d     = Signal(d_bits)
+        s2_hand  = Signal()
+        s2_rise  = Signal()
+        s2_zero  = Signal()
+        s2_dis   = Signal()
+        s2_stb   = Signal()
+        m.d.sync += [
+            s2_valid.eq(r_valid),
+            s2_slot.eq(r_slot),
+            s2_d.eq(d_eff),
+            s2_hand.eq(use_hand),
+            s2_rise.eq(rise_in),
+            s2_zero.eq(zero),
+            s2_dis.eq(dis_all),
+            s2_stb.eq(r_stb),
+        ]
+
+        # --- stage 2: low chunk -------------------------------------------------------------
+        code_stored = handed_rd.data[:2]
+        hand_copy   = handed_rd.data[2:].as_signed()
+        code        = Signal(2)
+        sum_lo      = Signal(l1 + 1)
+        hand_sub    = Signal(nshape)
+        m.d.comb += [
+            # Arming inside the step restarts the owed amount from 0.
+            code.eq(Mux(s2_rise, ZERO, code_stored)),
+            sum_lo.eq(_read_frac(code, lo_rd.data) + step_lo_rd.data),
+            hand_sub.eq(Mux(s2_hand, hand_copy, 0)),
+            lo_wr.addr.eq(s2_slot),
+            lo_wr.data.eq(sum_lo[:l1]),
+            lo_wr.en.eq(s2_valid),
+            step_mid_rd.addr.eq(Cat(s2_d, s2_slot)),
+            step_whole_rd.addr.eq(Cat(s2_d, s2_slot)),
+            mid_rd.addr.eq(s2_slot),
+        ]
+        s3_valid = Signal()
+        s3_slot  = Signal.like(s1_slot)
+        s3_code  = Signal(2)
+        s3_c1    = Signal()
+        s3_lo_nz = Signal()
+        s3_hand  = Signal(nshape)
+        s3_zero  = Signal()
+        s3_dis   = Signal()
+        s3_stb   = Signal()
+        m.d.sync += [
+            s3_valid.eq(s2_valid),
+            s3_slot.eq(s2_slot),
+            s3_code.eq(code),
+            s3_c1.eq(sum_lo[l1]),
+            s3_lo_nz.eq(sum_lo[:l1].any()),
+            s3_hand.eq(hand_sub),
+            s3_zero.eq(s2_zero),
+            s3_dis.eq(s2_dis),
+            s3_stb.eq(s2_stb),
+        ]
+
+        # --- stage 3: middle chunk; the whole part of the step less the hand-over -----------
+        sum_mid = Signal(frac - l1 + 1)
+        step_w  = Signal(signed(d_bits + 3 + nshape.width))
+        m.d.comb += [
+            sum_mid.eq(_read_frac(s3_code, mid_rd.data) + step_mid_rd.data + s3_c1),
+            step_w.eq(step_whole_rd.data.as_signed() - s3_hand),
+            mid_wr.addr.eq(s3_slot),
+            mid_wr.data.eq(sum_mid[:frac - l1]),
+            mid_wr.en.eq(s3_valid),
+            whole_rd.addr.eq(s3_slot),
+        ]
+        s4_valid = Signal()
+        s4_slot  = Signal.like(s1_slot)
+        s4_code  = Signal(2)
+        s4_c2    = Signal()
+        s4_nz    = Signal()
+        s4_step  = Signal.like(step_w)
+        s4_zero  = Signal()
+        s4_dis   = Signal()
+        s4_stb   = Signal()
+        m.d.sync += [
+            s4_valid.eq(s3_valid),
+            s4_slot.eq(s3_slot),
+            s4_code.eq(s3_code),
+            s4_c2.eq(sum_mid[frac - l1]),
+            s4_nz.eq(s3_lo_nz | sum_mid[:frac - l1].any()),
+            s4_step.eq(step_w),
+            s4_zero.eq(s3_zero),
+            s4_dis.eq(s3_dis),
+            s4_stb.eq(s3_stb),
+        ]
+
+        # --- stage 4: whole part --------------------------------------------------------------
+        whole_w = p.owed_bits + 2
+        stored  = Signal(signed(p.owed_bits))
+        hi      = Signal(signed(whole_w))
+        m.d.comb += [
+            stored.eq(_read_whole(s4_code, whole_rd.data, p.owed_bits)),
+            hi.eq(stored + s4_step + s4_c2),
+            whole_wr.addr.eq(s4_slot),
+            whole_wr.data.eq(hi[:p.owed_bits]),
+            whole_wr.en.eq(s4_valid),
+        ]
+        s5_valid = Signal()
+        s5_slot  = Signal.like(s1_slot)
+        s5_hi    = Signal.like(hi)
+        s5_nz    = Signal()
+        s5_zero  = Signal()
+        s5_dis   = Signal()
+        s5_stb   = Signal()
+        m.d.sync += [
+            s5_valid.eq(s4_valid),
+            s5_slot.eq(s4_slot),
+            s5_hi.eq(hi),
+            s5_nz.eq(s4_nz),
+            s5_zero.eq(s4_zero),
+            s5_dis.eq(s4_dis),
+            s5_stb.eq(s4_stb),
+        ]
+
+        # --- stage 5: saturation, the code, the hand-over ------------------------------------
+        over  = Signal()
+        under = Signal()
+        m.d.comb += [
+            # Past a limit when the bits above the owed register's sign disagree with it.
+            over.eq(~s5_hi[-1] & s5_hi[p.owed_bits - 1:].any()),
+            under.eq(s5_hi[-1] & ~s5_hi[p.owed_bits - 1:].all()),
+        ]
+        ask_n, ask_clmp = ask_logic(m, p, s5_hi, s5_nz, ~s5_zero)
+        m.d.comb += [
+            handed_wr.addr.eq(s5_slot),
+            handed_wr.data.eq(Cat(Mux(s5_zero, ZERO, Mux(over, UPPER, Mux(under, LOWER, RAW))), ask_n)),
+            handed_wr.en.eq(s5_valid),
+        ]
+        for i in range(n):
+            here = s5_valid & (s5_slot == i)
+            m.d.comb += self.clip[i].eq(here & ~s5_dis & (over | under))
+            with m.If(here & s5_stb):
+                m.d.sync += [self.hand_n[i].eq(ask_n), self.hand_clmp[i].eq(ask_clmp)]
+        return m
+
+
+def _read_frac(code: Value, bits: Value) -> Value:
+    """A fraction chunk as the code reads it: the stored bits, zeros (0, lower limit) or ones."""
+    return Mux(code == UPPER, (1 << len(bits)) - 1, Mux(code == RAW, bits, 0))
+
+
+def _read_whole(code: Value, bits: Value, width: int) -> Value:
+    """The whole chunk as the code reads it: the stored bits, 0, or a limit's whole part."""
+    upper = (1 << (width - 1)) - 1
+    lower = 1 << (width - 1)
+    return Mux(code == RAW, bits, Mux(code == UPPER, upper, Mux(code == LOWER, lower, 0)))

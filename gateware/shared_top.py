@@ -1,0 +1,128 @@
+"""The emulator's top with the shared owed datapath (``datapath = "shared"``).
+
+The same outputs, cycle for cycle, as :class:`dvgate.gateware.top.Emulator` with the same
+rates (``docs/timing.md``); what differs is the port contract:
+
+- there is no rate port: every channel keeps the config's rate;
+- ``arm`` is taken :attr:`HardwareParams.arm_lead` cycles ahead: the level driven at cycle
+  ``k`` is ``armed`` from ``k + arm_lead + 1`` (the per-channel top: from ``k + 1``), and
+  changes of ``arm`` must be at least :attr:`HardwareParams.arm_spacing` cycles apart.
+
+The strobe-to-pulse latency is the same, ``min_width_cyc + 2`` cycles.
+"""
+
+from __future__ import annotations
+
+from amaranth.hdl import Cat, Module, Signal
+from amaranth.lib import wiring
+
+from dvgate.gateware.accumulator import hand_over_lines
+from dvgate.gateware.emitter import PulseEmitter
+from dvgate.gateware.faults import FaultStage
+from dvgate.gateware.shared_owed import SharedOwed
+from dvgate.gateware.strobe import StrobeDetector
+from dvgate.gateware.top import check_names, ignore_logic, port_members, status_logic
+from dvgate.params import HardwareParams
+
+
+class SharedEmulator(wiring.Component):
+    """Pulse-output accelerometer emulator whose channels share one owed datapath.
+
+    Parameters
+    ----------
+    params : HardwareParams
+        With ``datapath == "shared"``.
+
+    Attributes
+    ----------
+    The ports of :class:`dvgate.gateware.top.Emulator` without ``rate_*``, and:
+
+    detector : StrobeDetector
+    owed : SharedOwed
+        The shared datapath (its block RAMs hold the owed amounts).
+    emitters : list of PulseEmitter
+    fault_stages : list of FaultStage
+    """
+
+    def __init__(self, params: HardwareParams) -> None:
+        if params.datapath != "shared":
+            raise ValueError("SharedEmulator needs params with datapath 'shared'")
+        check_names(params)
+        self._params = params
+        super().__init__(port_members(params, rates=False))
+        self.detector = StrobeDetector(edge_rising=params.edge_rising,
+                                       min_width_cyc=params.min_width_cyc,
+                                       absence_cyc=params.absence_cyc)
+        self.owed = SharedOwed(params)
+        self.emitters = [PulseEmitter(params) for _ in params.names]
+        self.fault_stages = [FaultStage(params) for _ in params.names]
+
+    def output_ports(self, channel: int) -> tuple[Signal, Signal]:
+        """The physical ``(pos, neg)`` output ports of channel ``channel``."""
+        name = self._params.names[channel]
+        return getattr(self, f"{name}_pos"), getattr(self, f"{name}_neg")
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        p = self._params
+        lead = p.arm_lead
+
+        m.submodules.detector = det = self.detector
+        m.submodules.owed = owed = self.owed
+
+        # arm_line[j] holds ``armed`` of cycle k + lead - j.
+        arm_line = Signal(lead + 1)
+        m.d.sync += arm_line.eq(Cat(self.arm, arm_line[:-1]))
+        armed      = arm_line[lead]
+        armed_next = arm_line[lead - 1]
+
+        take     = Signal()
+        ignoring = ignore_logic(m, self, det.stb)
+        overrun  = Signal(p.n)
+        clamped  = Signal(p.n)
+        deferred = Signal(p.n)
+        m.d.comb += [
+            det.pin.eq(self.strobe),
+            take.eq(det.stb & armed & ~ignoring),
+            self.strobes.eq(det.strobes),
+            self.period.eq(det.period),
+            self.host_absent.eq(det.host_absent),
+            owed.ahead_valid.eq(det.ahead_valid),
+            owed.ahead.eq(det.ahead),
+            owed.armed_ahead.eq(arm_line[0]),
+        ]
+
+        for i, (name, em, fs) in enumerate(zip(p.names, self.emitters, self.fault_stages, strict=True)):
+            m.submodules[f"{name}_emit"] = em
+            m.submodules[f"{name}_fault"] = fs
+            pos_port, neg_port = self.output_ports(i)
+            new_pos, new_neg = hand_over_lines(p, owed.hand_n[i], fs.faults.no_rest)
+            load = take & em.accept
+            m.d.comb += [
+                em.load.eq(load),
+                em.new_pos.eq(new_pos),
+                em.new_neg.eq(new_neg),
+                em.armed.eq(armed),
+                em.armed_next.eq(armed_next),
+                owed.load[i].eq(load),
+                fs.we.eq(self.fault_we & (self.fault_addr == i)),
+                fs.data.eq(self.fault_data),
+                fs.line_pos_next.eq(em.line_pos_next),
+                fs.line_neg_next.eq(em.line_neg_next),
+                fs.armed_next.eq(armed_next),
+                pos_port.eq(fs.pos ^ p.active_low),
+                neg_port.eq(fs.neg ^ p.active_low),
+                overrun[i].eq(take & em.busy),
+                clamped[i].eq(load & owed.hand_clmp[i]),
+                deferred[i].eq(take & ~em.accept),
+            ]
+        status_logic(m, self, take, overrun, clamped, deferred, owed.clip)
+        return m
+
+
+def emulator_top(params: HardwareParams) -> wiring.Component:
+    """The emulator's top for ``params``: :class:`SharedEmulator` or :class:`~dvgate.gateware.top.Emulator`."""
+    if params.datapath == "shared":
+        return SharedEmulator(params)
+    from dvgate.gateware.top import Emulator
+    return Emulator(params)
