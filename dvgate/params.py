@@ -20,7 +20,7 @@ ORDERS = ("interleaved", "grouped")
 #: them in turn (``dvgate.gateware.shared_owed``; constant rates only).
 DATAPATHS = ("per_channel", "shared")
 #: Cycles from a visit of the shared datapath to its hand-over being ready.
-SHARED_DEPTH = 7
+SHARED_DEPTH = 8
 
 #: Width of the strobe counter, the strobe period and the since-last-strobe timer.
 STROBE_COUNT_BITS = 32

@@ -6,7 +6,7 @@ Cycle rules: ``docs/timing.md``, section "Rate accumulator".
 from __future__ import annotations
 
 from amaranth.hdl import Cat, Module, Mux, Shape, Signal, Value, signed, unsigned
-from amaranth.lib import wiring
+from amaranth.lib import data, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.params import HardwareParams
@@ -33,9 +33,18 @@ def net_shape(params: HardwareParams) -> Shape:
     return signed(params.clamp.bit_length() + 1)
 
 
-def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
-              armed: Value) -> tuple[Signal, Signal]:
-    """The net count a strobe asks for, and whether it is clamped, from an owed amount.
+def ask_parts_layout(params: HardwareParams) -> data.StructLayout:
+    """What a strobe's ask is chosen from (:func:`ask_parts`), so a pipeline can register it.
+
+    ``neg``: the owed amount is negative; ``up``: burst, negative with a fraction
+    (truncation toward zero adds one); ``big_p``/``big_n``: burst, past +/- the clamp,
+    ternary, at least one / at most minus one; ``low_n``: burst, the truncated whole part.
+    """
+    return data.StructLayout({"neg": 1, "up": 1, "big_p": 1, "big_n": 1, "low_n": net_shape(params)})
+
+
+def ask_parts(m: Module, params: HardwareParams, whole: Value, frac_nz: Value) -> data.View:
+    """The comparisons a strobe's ask needs, from an owed amount (first half of :func:`ask_logic`).
 
     Parameters
     ----------
@@ -49,8 +58,59 @@ def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
         above the clamp, and the sign decides binary and ternary).
     frac_nz : Value
         The owed amount's fraction is not zero.
-    armed : Value
-        Low: the owed amount is 0 whatever ``whole`` and ``frac_nz`` say.
+    """
+    parts = Signal(ask_parts_layout(params))
+    neg   = whole[-1]
+    m.d.comb += parts.neg.eq(neg)
+    if params.scheme == "burst":
+        # Truncation toward zero: a negative amount with a fraction is one less whole.
+        # The clamp tests look at the low bits only (short compares): past the clamp's
+        # width, any bit that differs from the sign is past the clamp.
+        clamp = params.clamp
+        cb    = clamp.bit_length()
+        up    = neg & frac_nz
+        mag_n = Signal(len(whole))  # -whole - 1 for a negative amount: ~whole
+        m.d.comb += [
+            mag_n.eq(~whole),
+            parts.up.eq(up),
+            parts.low_n.eq(whole[:net_shape(params).width] + up),
+            # whole > clamp
+            parts.big_p.eq(~neg & (whole[cb:].any() | (whole[:cb] > clamp))),
+            # whole < -clamp - up, that is ~whole >= clamp + up
+            parts.big_n.eq(neg & (mag_n[cb:].any() | Mux(up, mag_n[:cb] > clamp, mag_n[:cb] >= clamp))),
+        ]
+    elif params.scheme == "ternary":  # at least one whole pulse either way (-1 with no fraction is -one)
+        m.d.comb += [
+            parts.big_p.eq(whole >= 1),
+            parts.big_n.eq((whole < -1) | ((whole == -1) & ~frac_nz)),
+        ]
+    return parts
+
+
+def ask_select(m: Module, params: HardwareParams, parts: data.View, armed: Value) -> tuple[Signal, Signal]:
+    """The net count a strobe asks for, and whether it is clamped (second half of :func:`ask_logic`).
+
+    ``armed`` low means the owed amount is 0, whatever ``parts`` say.
+    """
+    ask_n    = Signal(net_shape(params))
+    ask_clmp = Signal()
+    if params.scheme == "burst":
+        m.d.comb += [
+            ask_clmp.eq(armed & (parts.big_p | parts.big_n)),
+            ask_n.eq(Mux(~armed, 0, Mux(parts.big_p, params.clamp, Mux(parts.big_n, -params.clamp, parts.low_n)))),
+        ]
+    elif params.scheme == "binary":
+        m.d.comb += ask_n.eq(Mux(~armed | ~parts.neg, 1, -1))
+    else:
+        m.d.comb += ask_n.eq(Mux(~armed, 0, Mux(parts.big_p, 1, Mux(parts.big_n, -1, 0))))
+    return ask_n, ask_clmp
+
+
+def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
+              armed: Value) -> tuple[Signal, Signal]:
+    """The net count a strobe asks for, and whether it is clamped, from an owed amount.
+
+    :func:`ask_parts` then :func:`ask_select`, in one cycle.
 
     Returns
     -------
@@ -58,30 +118,7 @@ def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
         ``(n, clamped)``: the net count (:func:`net_shape`) and, for the burst scheme,
         whether the whole part was past the clamp (always 0 otherwise).
     """
-    ask_n    = Signal(net_shape(params))
-    ask_clmp = Signal()
-    neg      = whole[-1]
-    if params.scheme == "burst":
-        # Truncation toward zero: a negative amount with a fraction is one less whole.
-        up    = Signal()
-        low_n = Signal.like(ask_n)
-        big_p = Signal()
-        big_n = Signal()
-        m.d.comb += [
-            up.eq(neg & frac_nz),
-            low_n.eq(whole[:len(ask_n)] + up),
-            big_p.eq(whole > params.clamp),
-            big_n.eq(whole < -params.clamp - up),
-            ask_clmp.eq(armed & (big_p | big_n)),
-            ask_n.eq(Mux(~armed, 0, Mux(big_p, params.clamp, Mux(big_n, -params.clamp, low_n)))),
-        ]
-    elif params.scheme == "binary":
-        m.d.comb += ask_n.eq(Mux(~armed | ~neg, 1, -1))
-    else:  # ternary: at least one whole pulse either way (-1 with no fraction is -one)
-        at_one   = whole >= 1
-        at_m_one = (whole < -1) | ((whole == -1) & ~frac_nz)
-        m.d.comb += ask_n.eq(Mux(~armed, 0, Mux(at_one, 1, Mux(at_m_one, -1, 0))))
-    return ask_n, ask_clmp
+    return ask_select(m, params, ask_parts(m, params, whole, frac_nz), armed)
 
 
 def hand_over_lines(params: HardwareParams, n: Value, no_rest: Value) -> tuple[Value, Value]:

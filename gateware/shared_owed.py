@@ -43,7 +43,7 @@ from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
 from amaranth.lib import data, memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.accumulator import ask_logic, net_shape
+from dvgate.gateware.accumulator import ask_parts, ask_select, net_shape
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -165,6 +165,8 @@ class SharedOwed(wiring.Component):
 
         # Accepted hand-overs wait here for the visit that moves past their strobe.
         loaded = Signal(n)
+        # The channels whose anchor is the strobe in view, while it is still ahead.
+        pending = Signal(n)
 
         # --- counters: the cycle number and the cycles a visit looks ahead to ------------
         # Kept as registers so that no stage adds an offset to a cycle number first.
@@ -206,21 +208,15 @@ class SharedOwed(wiring.Component):
         ]
         s1_valid = Signal()
         s1_slot  = Signal(range(slots))
-        s1_next  = Signal(cb)
         s1_t     = Signal(cb)
         s1_stb   = Signal()
         s1_e     = Signal(cb)
         s1_old   = Signal()
         s1_lvl   = Signal()
-        s1_view  = Signal(cb)
-        s1_view_ok = Signal()
         m.d.sync += [
             s1_valid.eq(slot < n),
             s1_slot.eq(slot),
-            s1_next.eq(now + 1),
             s1_t.eq(Mux(in_window, view_at, now_end)),
-            s1_view.eq(view_at),
-            s1_view_ok.eq(self.ahead_valid),
             s1_stb.eq(in_window),
             # The newest level holds from ``change_at`` (this cycle's change included).
             s1_e.eq(Mux(changed, now_arm, change_at)),
@@ -235,20 +231,25 @@ class SharedOwed(wiring.Component):
         diff_ta = Signal(cb)   # t - a
         diff_ea = Signal(cb)   # e - a
         diff_te = Signal(cb)   # t - e
-        diff_an = Signal(cb)   # a - (v + 1)
         m.d.comb += [
             diff_ta.eq(s1_t - a_abs),
             diff_ea.eq(s1_e - a_abs),
             diff_te.eq(s1_t - s1_e),
-            diff_an.eq(a_abs - s1_next),
             anchor_wr.addr.eq(s1_slot),
             anchor_wr.data.eq(Cat(s1_t, s1_stb)),
+            # Read a stage early, so the low chunk's stage starts from registers.
+            handed_rd.addr.eq(s1_slot),
         ]
         # The anchor's strobe is still ahead and still in view: its hand-over is not decided
-        # yet. (A strobe in view that is no longer the one ahead will not come: nothing is
-        # handed over at it, and a new strobe may already be in this visit's window.)
-        skip = at_stb & ~diff_an[-1] & s1_view_ok & (s1_view == a_abs)
+        # yet. (A strobe that was in view and no longer is will not come: nothing is handed
+        # over at it, and a new strobe may already be in this visit's window.)
+        skip = pending.bit_select(s1_slot, 1)
         m.d.comb += anchor_wr.en.eq(s1_valid & ~skip)
+        # Cleared once the strobe in view comes (its hand-over is then decided) or is gone.
+        with m.If(~self.ahead_valid | (self.ahead == 0)):
+            m.d.sync += pending.eq(0)
+        with m.Elif(s1_valid & ~skip & s1_stb):
+            m.d.sync += pending.eq(pending | (1 << s1_slot))
         r_valid  = Signal()
         r_slot   = Signal.like(s1_slot)
         r_stb    = Signal()
@@ -289,7 +290,6 @@ class SharedOwed(wiring.Component):
             d_eff.eq(Mux(rise_in, r_d_te, Mux(fall_in, r_d_ea, r_d_ta))),
             step_lo_rd.addr.eq(Cat(d_eff, r_slot)),
             lo_rd.addr.eq(r_slot),
-            handed_rd.addr.eq(r_slot),
         ]
         use_hand = Signal()
         m.d.comb += use_hand.eq(loaded.bit_select(r_slot, 1) & r_at_stb & ~rise_in)
@@ -302,7 +302,8 @@ class SharedOwed(wiring.Component):
         s2_slot  = Signal.like(s1_slot)
         s2_d     = Signal(d_bits)
         s2_hand  = Signal()
-        s2_rise  = Signal()
+        s2_code  = Signal(2)
+        s2_copy  = Signal(nshape)
         s2_zero  = Signal()
         s2_dis   = Signal()
         s2_stb   = Signal()
@@ -311,23 +312,21 @@ class SharedOwed(wiring.Component):
             s2_slot.eq(r_slot),
             s2_d.eq(d_eff),
             s2_hand.eq(use_hand),
-            s2_rise.eq(rise_in),
+            # Arming inside the step restarts the owed amount from 0.
+            s2_code.eq(Mux(rise_in, ZERO, handed_rd.data[:2])),
+            s2_copy.eq(handed_rd.data[2:]),
             s2_zero.eq(zero),
             s2_dis.eq(dis_all),
             s2_stb.eq(r_stb),
         ]
 
-        # --- stage 2: low chunk -------------------------------------------------------------
-        code_stored = handed_rd.data[:2]
-        hand_copy   = handed_rd.data[2:].as_signed()
-        code        = Signal(2)
+        # --- stage 3: low chunk -------------------------------------------------------------
+        code        = s2_code
         sum_lo      = Signal(l1 + 1)
         hand_sub    = Signal(nshape)
         m.d.comb += [
-            # Arming inside the step restarts the owed amount from 0.
-            code.eq(Mux(s2_rise, ZERO, code_stored)),
             sum_lo.eq(_read_frac(code, lo_rd.data) + step_lo_rd.data),
-            hand_sub.eq(Mux(s2_hand, hand_copy, 0)),
+            hand_sub.eq(Mux(s2_hand, s2_copy, 0)),
             lo_wr.addr.eq(s2_slot),
             lo_wr.data.eq(sum_lo[:l1]),
             lo_wr.en.eq(s2_valid),
@@ -339,7 +338,7 @@ class SharedOwed(wiring.Component):
         s3_slot  = Signal.like(s1_slot)
         s3_code  = Signal(2)
         s3_c1    = Signal()
-        s3_lo_nz = Signal()
+        s3_lo_nz = Signal(_groups(l1))
         s3_hand  = Signal(nshape)
         s3_zero  = Signal()
         s3_dis   = Signal()
@@ -349,14 +348,14 @@ class SharedOwed(wiring.Component):
             s3_slot.eq(s2_slot),
             s3_code.eq(code),
             s3_c1.eq(sum_lo[l1]),
-            s3_lo_nz.eq(sum_lo[:l1].any()),
+            s3_lo_nz.eq(_nonzero_groups(sum_lo[:l1])),
             s3_hand.eq(hand_sub),
             s3_zero.eq(s2_zero),
             s3_dis.eq(s2_dis),
             s3_stb.eq(s2_stb),
         ]
 
-        # --- stage 3: middle chunk; the whole part of the step less the hand-over -----------
+        # --- stage 4: middle chunk; the whole part of the step less the hand-over -----------
         sum_mid = Signal(frac - l1 + 1)
         step_w  = Signal(signed(d_bits + 3 + nshape.width))
         m.d.comb += [
@@ -371,7 +370,7 @@ class SharedOwed(wiring.Component):
         s4_slot  = Signal.like(s1_slot)
         s4_code  = Signal(2)
         s4_c2    = Signal()
-        s4_nz    = Signal()
+        s4_nz    = Signal(_groups(l1) + _groups(frac - l1))
         s4_step  = Signal.like(step_w)
         s4_zero  = Signal()
         s4_dis   = Signal()
@@ -381,14 +380,15 @@ class SharedOwed(wiring.Component):
             s4_slot.eq(s3_slot),
             s4_code.eq(s3_code),
             s4_c2.eq(sum_mid[frac - l1]),
-            s4_nz.eq(s3_lo_nz | sum_mid[:frac - l1].any()),
+            # Which 4-bit groups of the fraction are not zero; ORed a stage later.
+            s4_nz.eq(Cat(s3_lo_nz, _nonzero_groups(sum_mid[:frac - l1]))),
             s4_step.eq(step_w),
             s4_zero.eq(s3_zero),
             s4_dis.eq(s3_dis),
             s4_stb.eq(s3_stb),
         ]
 
-        # --- stage 4: whole part --------------------------------------------------------------
+        # --- stage 5: whole part --------------------------------------------------------------
         whole_w = p.owed_bits + 2
         stored  = Signal(signed(p.owed_bits))
         hi      = Signal(signed(whole_w))
@@ -410,13 +410,13 @@ class SharedOwed(wiring.Component):
             s5_valid.eq(s4_valid),
             s5_slot.eq(s4_slot),
             s5_hi.eq(hi),
-            s5_nz.eq(s4_nz),
+            s5_nz.eq(s4_nz.any()),
             s5_zero.eq(s4_zero),
             s5_dis.eq(s4_dis),
             s5_stb.eq(s4_stb),
         ]
 
-        # --- stage 5: saturation, the code, the hand-over ------------------------------------
+        # --- stage 6: saturation and the code; the ask's comparisons --------------------------
         over  = Signal()
         under = Signal()
         m.d.comb += [
@@ -424,18 +424,45 @@ class SharedOwed(wiring.Component):
             over.eq(~s5_hi[-1] & s5_hi[p.owed_bits - 1:].any()),
             under.eq(s5_hi[-1] & ~s5_hi[p.owed_bits - 1:].all()),
         ]
-        ask_n, ask_clmp = ask_logic(m, p, s5_hi, s5_nz, ~s5_zero)
+        for i in range(n):
+            m.d.comb += self.clip[i].eq(s5_valid & (s5_slot == i) & ~s5_dis & (over | under))
+        parts = ask_parts(m, p, s5_hi, s5_nz)
+        s6_valid = Signal()
+        s6_slot  = Signal.like(s1_slot)
+        s6_code  = Signal(2)
+        s6_parts = Signal.like(parts)
+        s6_zero  = Signal()
+        s6_stb   = Signal()
+        m.d.sync += [
+            s6_valid.eq(s5_valid),
+            s6_slot.eq(s5_slot),
+            s6_code.eq(Mux(s5_zero, ZERO, Mux(over, UPPER, Mux(under, LOWER, RAW)))),
+            s6_parts.eq(parts),
+            s6_zero.eq(s5_zero),
+            s6_stb.eq(s5_stb),
+        ]
+
+        # --- stage 7: the hand-over ---------------------------------------------------------
+        ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
         m.d.comb += [
-            handed_wr.addr.eq(s5_slot),
-            handed_wr.data.eq(Cat(Mux(s5_zero, ZERO, Mux(over, UPPER, Mux(under, LOWER, RAW))), ask_n)),
-            handed_wr.en.eq(s5_valid),
+            handed_wr.addr.eq(s6_slot),
+            handed_wr.data.eq(Cat(s6_code, ask_n)),
+            handed_wr.en.eq(s6_valid),
         ]
         for i in range(n):
-            here = s5_valid & (s5_slot == i)
-            m.d.comb += self.clip[i].eq(here & ~s5_dis & (over | under))
-            with m.If(here & s5_stb):
+            with m.If(s6_valid & (s6_slot == i) & s6_stb):
                 m.d.sync += [self.hand_n[i].eq(ask_n), self.hand_clmp[i].eq(ask_clmp)]
         return m
+
+
+def _groups(width: int) -> int:
+    """Number of 4-bit groups of ``width`` bits (one LUT each tests one for zero)."""
+    return (width + 3) // 4
+
+
+def _nonzero_groups(value: Value) -> Value:
+    """One bit per 4-bit group of ``value``: the group is not zero."""
+    return Cat(*(value[k:k + 4].any() for k in range(0, len(value), 4)))
 
 
 def _read_frac(code: Value, bits: Value) -> Value:

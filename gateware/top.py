@@ -158,12 +158,13 @@ def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> Signal:
         The window is open this cycle: a strobe now is not taken.
     """
     ignore_left = Signal(IGNORE_CYCLES_BITS, name="ignore_left")
-    ignoring    = Signal()
-    m.d.comb += ignoring.eq(ignore_left != 0)
+    # ``ignore_left != 0`` kept as its own register: the strobe's take then waits for no
+    # 32-bit test.
+    ignoring    = Signal(name="ignore_open")
     with m.If(top.ignore_we):
-        m.d.sync += ignore_left.eq(top.ignore_cycles)
+        m.d.sync += [ignore_left.eq(top.ignore_cycles), ignoring.eq(top.ignore_cycles != 0)]
     with m.Elif(ignoring):
-        m.d.sync += ignore_left.eq(ignore_left - 1)
+        m.d.sync += [ignore_left.eq(ignore_left - 1), ignoring.eq(ignore_left != 1)]
     with m.If(stb & ignoring & (top.ignored != _EVENT_MAX)):
         m.d.sync += top.ignored.eq(top.ignored + 1)
     return ignoring

@@ -233,7 +233,7 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
     holding = {"flags", "overruns", "clamps", "deferrals", "saturations", "ignored", "detector.period",
                "detector.strobes", "clipped"}
     # Read or advanced when present (the fault stage and the ignore window).
-    optional = {"ignore_left"}
+    optional = {"ignore_left", "ignore_open"}
     for i, name in enumerate(params.names):
         needed |= {f"{name}_acc.owed", f"{name}_emit.pend_pos", f"{name}_emit.pend_neg", f"{name}_emit.mode"}
         # The hand-over decided the cycle before a strobe: loaded only when the detector
@@ -839,6 +839,8 @@ def _design_code(params: HardwareParams, design_cc: str) -> str:
     if "ignore_left" in members:
         out += [f"    u128 left = {get('ignore_left')};",
                 f"    put({ref('ignore_left')}, left > (u128)k ? left - (u128)k : (u128)0);"]
+        if "ignore_open" in members:  # the window's ``ignore_left != 0``, kept as a register
+            out.append(f"    put({ref('ignore_open')}, left > (u128)k ? (u128)1 : (u128)0);")
     out.append(f"    if (!{get('armed')}) return;")
     for i, name in enumerate(params.names):
         owed = ref(f"{name}_acc.owed")

@@ -104,7 +104,7 @@ def test_the_runs_reach_every_event() -> None:
 
 def test_held_owed_amounts_are_the_models() -> None:
     compared = 0
-    for seed in range(100, 106):
+    for seed in range(100, 112):
         rnd = random.Random(seed)
         p = shared_params(rnd, 3, SCHEMES[seed % 3])
         stim = shared_stimulus(rnd, p, rnd.randint(300, 600))
