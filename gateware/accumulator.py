@@ -28,6 +28,11 @@ def count_shape(params: HardwareParams) -> Shape:
     return unsigned(params.per_strobe_max.bit_length())
 
 
+def mag_shape(params: HardwareParams) -> Shape:
+    """Shape of the magnitude of the net count one strobe asks for (``0 .. clamp``)."""
+    return unsigned(params.clamp.bit_length() if params.scheme == "burst" else 1)
+
+
 def net_shape(params: HardwareParams) -> Shape:
     """Shape of the signed net count ``n`` one strobe asks for (``-clamp .. clamp``)."""
     return signed(params.clamp.bit_length() + 1)
@@ -40,7 +45,8 @@ def ask_parts_layout(params: HardwareParams) -> data.StructLayout:
     (truncation toward zero adds one); ``big_p``/``big_n``: burst, past +/- the clamp,
     ternary, at least one / at most minus one; ``low_n``: burst, the truncated whole part.
     """
-    return data.StructLayout({"neg": 1, "up": 1, "big_p": 1, "big_n": 1, "low_n": net_shape(params)})
+    return data.StructLayout({"neg": 1, "up": 1, "big_p": 1, "big_n": 1, "low_n": net_shape(params),
+                              "low_mag": mag_shape(params)})
 
 
 def ask_parts(m: Module, params: HardwareParams, whole: Value, frac_nz: Value) -> data.View:
@@ -74,6 +80,8 @@ def ask_parts(m: Module, params: HardwareParams, whole: Value, frac_nz: Value) -
             mag_n.eq(~whole),
             parts.up.eq(up),
             parts.low_n.eq(whole[:net_shape(params).width] + up),
+            # |whole + up| (for a negative amount ~whole + 1 - up), in the clamp's width.
+            parts.low_mag.eq(Mux(neg, mag_n, whole)[:cb] + (neg & ~up)),
             # whole > clamp
             parts.big_p.eq(~neg & (whole[cb:].any() | (whole[:cb] > clamp))),
             # whole < -clamp - up, that is ~whole >= clamp + up
@@ -106,6 +114,29 @@ def ask_select(m: Module, params: HardwareParams, parts: data.View, armed: Value
     return ask_n, ask_clmp
 
 
+def ask_magnitude(m: Module, params: HardwareParams, parts: data.View, armed: Value) -> tuple[Signal, Signal]:
+    """The ask of :func:`ask_select` as a sign and a magnitude (:func:`mag_shape`).
+
+    Returns
+    -------
+    tuple of Signal
+        ``(neg, mag)``: the count is ``-mag`` when ``neg``, else ``mag`` (``neg`` is
+        meaningless when ``mag`` is 0).
+    """
+    neg = Signal()
+    mag = Signal(mag_shape(params))
+    if params.scheme == "burst":
+        m.d.comb += [
+            neg.eq(parts.neg),
+            mag.eq(Mux(~armed, 0, Mux(parts.big_p | parts.big_n, params.clamp, parts.low_mag))),
+        ]
+    elif params.scheme == "binary":
+        m.d.comb += [neg.eq(armed & parts.neg), mag.eq(1)]
+    else:
+        m.d.comb += [neg.eq(parts.big_n), mag.eq(armed & (parts.big_p | parts.big_n))]
+    return neg, mag
+
+
 def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
               armed: Value) -> tuple[Signal, Signal]:
     """The net count a strobe asks for, and whether it is clamped, from an owed amount.
@@ -121,13 +152,13 @@ def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,
     return ask_select(m, params, ask_parts(m, params, whole, frac_nz), armed)
 
 
-def hand_over_lines(params: HardwareParams, n: Value, no_rest: Value) -> tuple[Value, Value]:
-    """Pulses a hand-over of net count ``n`` puts on the positive and the negative line.
+def hand_over_lines(params: HardwareParams, neg: Value, mag: Value, no_rest: Value) -> tuple[Value, Value]:
+    """Pulses a hand-over of net count ``-mag`` (``neg``) or ``mag`` puts on the positive and the negative line.
 
-    Rest pulses (burst) on both lines unless ``no_rest``; then ``n`` on its own line.
+    Rest pulses (burst) on both lines unless ``no_rest``; then ``mag`` on its own line.
     """
     rest = Mux(no_rest, 0, params.rest) if params.scheme == "burst" else 0
-    return rest + Mux(n > 0, n, 0), rest + Mux(n < 0, -n, 0)
+    return rest + Mux(neg, 0, mag), rest + Mux(neg, mag, 0)
 
 
 class RateAccumulator(wiring.Component):
@@ -236,7 +267,7 @@ class RateAccumulator(wiring.Component):
         with m.If(self.prepare):
             m.d.sync += [hand_n.eq(ask_n), hand_clmp.eq(ask_clmp)]
 
-        new_pos, new_neg = hand_over_lines(p, hand_n, self.no_rest)
+        new_pos, new_neg = hand_over_lines(p, hand_n[-1], Mux(hand_n[-1], -hand_n, hand_n), self.no_rest)
         m.d.comb += [
             self.n.eq(hand_n),
             self.new_pos.eq(new_pos),

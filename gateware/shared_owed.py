@@ -43,7 +43,7 @@ from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
 from amaranth.lib import data, memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.accumulator import ask_parts, ask_select, net_shape
+from dvgate.gateware.accumulator import ask_magnitude, ask_parts, ask_select, mag_shape, net_shape
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -101,9 +101,10 @@ class SharedOwed(wiring.Component):
         ``armed`` of cycle ``k + arm_lead`` (the arm input, delayed to that point).
     load : Signal(n), in
         Per channel: the hand-over of this cycle's strobe is accepted (``take & accept``).
-    hand_n : ArrayLayout(net_shape, n), out
-        Per channel: what the next strobe asks for (registers, ready ``SHARED_DEPTH``
-        cycles after the visit that targets the strobe).
+    hand_neg, hand_mag : out
+        Per channel: what the next strobe asks for, as a sign (``Signal(n)``) and a
+        magnitude (``ArrayLayout(mag_shape, n)``); registers, ready ``SHARED_DEPTH``
+        cycles after the visit that targets the strobe.
     hand_clmp : Signal(n), out
         Per channel: ``hand_n`` was clamped (burst).
     clip : Signal(n), out
@@ -120,7 +121,8 @@ class SharedOwed(wiring.Component):
             "ahead": In(range(max(2, params.min_width_cyc))),
             "armed_ahead": In(1),
             "load": In(params.n),
-            "hand_n": Out(data.ArrayLayout(net_shape(params), params.n)),
+            "hand_neg": Out(params.n),
+            "hand_mag": Out(data.ArrayLayout(mag_shape(params), params.n)),
             "hand_clmp": Out(params.n),
             "clip": Out(params.n),
         })
@@ -444,6 +446,7 @@ class SharedOwed(wiring.Component):
 
         # --- stage 7: the hand-over ---------------------------------------------------------
         ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
+        ask_neg, ask_mag = ask_magnitude(m, p, s6_parts, ~s6_zero)
         m.d.comb += [
             handed_wr.addr.eq(s6_slot),
             handed_wr.data.eq(Cat(s6_code, ask_n)),
@@ -451,7 +454,8 @@ class SharedOwed(wiring.Component):
         ]
         for i in range(n):
             with m.If(s6_valid & (s6_slot == i) & s6_stb):
-                m.d.sync += [self.hand_n[i].eq(ask_n), self.hand_clmp[i].eq(ask_clmp)]
+                m.d.sync += [self.hand_neg[i].eq(ask_neg), self.hand_mag[i].eq(ask_mag),
+                             self.hand_clmp[i].eq(ask_clmp)]
         return m
 
 

@@ -96,7 +96,7 @@ class SharedEmulator(wiring.Component):
             m.submodules[f"{name}_emit"] = em
             m.submodules[f"{name}_fault"] = fs
             pos_port, neg_port = self.output_ports(i)
-            new_pos, new_neg = hand_over_lines(p, owed.hand_n[i], fs.faults.no_rest)
+            new_pos, new_neg = hand_over_lines(p, owed.hand_neg[i], owed.hand_mag[i], fs.faults.no_rest)
             load = take & em.accept
             m.d.comb += [
                 em.load.eq(load),
