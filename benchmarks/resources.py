@@ -2,10 +2,12 @@
 
 Builds the example config (``dvgate/examples/bench.toml``) with 1, 3, 6 and 16 channels
 at 48 MHz (a PLL from the boards' 12 MHz oscillators) through the open toolchain, and
-writes a markdown table with the date, the machine and the tool versions. Two variants:
+writes a markdown table with the date, the machine and the tool versions. Three variants:
 
 * ``fixed``: the bare emulator; its rates stay at the config's values (every channel
   0.5 g here), so synthesis folds the rate registers into constants;
+* ``shared``: the bare emulator with ``[rate] datapath = "shared"``: every channel's owed
+  amount in block RAM, one pipeline visiting the channels in turn;
 * ``link``: the emulator with its host link (a ``[link]`` section), whose rates are
   registers the host writes: the design as it is used.
 
@@ -45,10 +47,12 @@ ROOT = HERE.parent
 CONFIG = ROOT / "dvgate" / "examples" / "bench.toml"
 #: Device label and, per variant, the pin map: (file, built-in board).
 DEVICES = {
-    "up5k": ("iCE40 UP5K", {"fixed": (HERE / "up5k_bench_pins.toml", None), "link": (None, "icebreaker")}),
-    "hx8k": ("iCE40 HX8K", {"fixed": (None, "ice40-hx8k-breakout"), "link": (None, "ice40-hx8k-breakout")}),
+    "up5k": ("iCE40 UP5K", {"fixed": (HERE / "up5k_bench_pins.toml", None),
+                            "shared": (HERE / "up5k_bench_pins.toml", None), "link": (None, "icebreaker")}),
+    "hx8k": ("iCE40 HX8K", {"fixed": (None, "ice40-hx8k-breakout"), "shared": (None, "ice40-hx8k-breakout"),
+                            "link": (None, "ice40-hx8k-breakout")}),
 }
-VARIANTS = ("fixed", "link")
+VARIANTS = ("fixed", "shared", "link")
 #: Text from this line on in the output file is kept when the table is measured again.
 KEEP_MARKER = "<!-- analysis: kept when benchmarks/resources.py rewrites the table above -->"
 #: Every channel's rate in the benchmark (a constant rate of zero would fold away).
@@ -81,6 +85,8 @@ def bench_config(channels: int, clock: str, variant: str) -> Config:
     raw.pop("link", None)
     if variant == "link":
         raw["link"] = {"baud": 115200}
+    if variant == "shared":
+        raw["rate"] = {**raw.get("rate", {}), "datapath": "shared"}
     return parse_config(raw, str(CONFIG))
 
 
@@ -173,7 +179,9 @@ def markdown(rows: list[Row], clock: str) -> str:
         "",
         f"Config: `dvgate/examples/bench.toml` ({describe_config(clock)}) with N channels, every one "
         f"at {RATE}, and the clock set to {clock} (a PLL from the 12 MHz oscillator). Variant `fixed`: "
-        "the bare emulator, whose rates synthesis folds into constants; variant `link`: with the "
+        "the bare emulator, whose rates synthesis folds into constants; variant `shared`: the same "
+        "with `[rate] datapath = \"shared\"` (one time-multiplexed owed datapath, `gateware/shared_owed.py`); "
+        "variant `link`: with the "
         "host link (`[link] baud = 115200`), rates written by the host: the design as it is used. "
         "Pins: UP5K `fixed` on `benchmarks/up5k_bench_pins.toml` (UP5K breakout, every header pin), "
         "UP5K `link` on the iCEBreaker, HX8K on the HX8K breakout. "

@@ -141,6 +141,9 @@ def plan_run(program: Program, config: Config, *, read_every: int = 1) -> RunPla
     computation cycle), so the last counter read covers a full cycle.
     """
     hw = config.hw
+    if hw.datapath == "shared":
+        raise UserError("rate.datapath = 'shared' keeps every channel at its config rate, and a program changes "
+                        "rates: run programs with rate.datapath = 'per_channel' (the design a [link] build uses)")
     origin = hw.n + 2
     period = config.strobe_period_cyc
     end = origin + program.total_ticks

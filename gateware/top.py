@@ -321,7 +321,7 @@ class Emulator(wiring.Component):
 
 
 def write_verilog(params: HardwareParams, path: str | Path | None = None) -> str:
-    """Verilog of the emulator's top, module ``dvgate_top``.
+    """Verilog of the emulator's top (of ``params.datapath``), module ``dvgate_top``.
 
     Parameters
     ----------
@@ -335,7 +335,9 @@ def write_verilog(params: HardwareParams, path: str | Path | None = None) -> str
     str
         The Verilog source.
     """
-    return component_verilog(Emulator(params), "dvgate_top", path)
+    from dvgate.gateware.shared_top import emulator_top  # it builds on this module
+
+    return component_verilog(emulator_top(params), "dvgate_top", path)
 
 
 def component_verilog(component: wiring.Component, name: str, path: str | Path | None = None) -> str:

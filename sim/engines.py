@@ -56,13 +56,16 @@ def fastest() -> RunFunction:
     return _compiled() if choose()[0] == "compiled" else _python()
 
 
-def get_engine(name: str | None) -> tuple[RunFunction, str]:
+def get_engine(name: str | None, datapath: str = "per_channel") -> tuple[RunFunction, str]:
     """The run function for ``name`` and a one-line description for reports.
 
     Parameters
     ----------
     name : str or None
         ``"python"``, ``"compiled"``, or None for the default (:func:`choose`).
+    datapath : str
+        The config's ``rate.datapath``: the compiled engine models the per-channel
+        datapath only, so the shared one runs in the python engine.
 
     Returns
     -------
@@ -73,8 +76,14 @@ def get_engine(name: str | None) -> tuple[RunFunction, str]:
     Raises
     ------
     UserError
-        An unknown name, or ``"compiled"`` where no C++ compiler is found.
+        An unknown name, ``"compiled"`` where no C++ compiler is found, or ``"compiled"``
+        for the shared datapath.
     """
+    if datapath == "shared":
+        if name == "compiled":
+            raise UserError("--engine compiled: the compiled engine models the per-channel datapath; this config "
+                            "has rate.datapath = 'shared': use --engine python")
+        return _python(), "python (Amaranth simulator; the shared datapath runs only here)"
     if name is None:
         chosen, why = choose()
         if chosen == "compiled":

@@ -61,14 +61,15 @@ def integral(params: HardwareParams, stim: Stimulus, channel: int, armed: list[t
 def stimulus_for(config: Config, seconds: float, *, first_strobe: int | None = None) -> Stimulus:
     """The run ``dvgate sim`` makes: the config's periodic strobe at its initial rates.
 
-    Armed from cycle 0; the first strobe comes one strobe period in, so the first
-    hand-over has a period's worth of rate owed.
+    Armed from cycle 0 (from ``arm_lead``, the earliest the shared datapath can follow);
+    the first strobe comes one strobe period in, so the first hand-over has a period's
+    worth of rate owed.
     """
     cycles = max(1, round(seconds * config.clock_hz))
     period = config.strobe_period_cyc
     first = period if first_strobe is None else first_strobe
     edges = periodic_strobe_edges(cycles, period, config.strobe_width_cyc, first=first)
-    return Stimulus(cycles=cycles, strobe_edges=edges)
+    return Stimulus(cycles=cycles, strobe_edges=edges, arm_changes=((config.hw.arm_lead, True),))
 
 
 def rate_changes(changes: list[tuple[int, int, int]]) -> tuple[RateChange, ...]:

@@ -17,7 +17,7 @@ def run(args: argparse.Namespace) -> int:
         raise UserError(f"--seconds = {args.seconds!r}: allowed: more than 0, at most 3600")
     from dvgate.sim.engines import get_engine
 
-    engine, description = get_engine(args.engine)
+    engine, description = get_engine(args.engine, config.hw.datapath)
     report = simulate_config(config, args.seconds, engine=engine, engine_name=description, vcd_path=args.vcd)
     out = console()
     rows = []
