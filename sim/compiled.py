@@ -247,13 +247,13 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
 
 @cache
 def input_ports(params: HardwareParams) -> tuple[tuple[str, int, bool], ...]:
-    """The emulator's input ports ``(name, width, signed)``, in record-kind order."""
+    """The emulator's input ports ``(name, width, signed)``, in record-kind order (of ``params.datapath``'s top)."""
     from amaranth.hdl import Fragment, Shape
     from amaranth.lib import wiring
 
-    from dvgate.gateware.top import Emulator
+    from dvgate.gateware.shared_top import emulator_top
 
-    top = Emulator(params)
+    top = emulator_top(params)
     Fragment.get(top, None)  # elaborated, so Amaranth does not warn that it went unused
     out = []
     for name, member in top.signature.members.items():

@@ -93,7 +93,9 @@ def verilog_testbench(params: HardwareParams) -> str:
             status_items.append(f)
     books = []
     for name in params.names:
-        books.append(f'      $display("B %0d %0d %0d", $signed(dut.{name}_acc.owed), dut.{name}_emit.pend_pos, '
+        # The shared datapath keeps no owed register: its books print 0 there (read back as None).
+        owed = "0" if params.datapath == "shared" else f"$signed(dut.{name}_acc.owed)"
+        books.append(f'      $display("B %0d %0d %0d", {owed}, dut.{name}_emit.pend_pos, '
                      f"dut.{name}_emit.pend_neg);")
     fmt = " ".join(["%0d"] * len(status_items))
     return "\n".join([
@@ -155,9 +157,9 @@ def _output_widths(params: HardwareParams) -> dict[str, int]:
     from amaranth.hdl import Fragment, Shape
     from amaranth.lib import wiring
 
-    from dvgate.gateware.top import Emulator
+    from dvgate.gateware.shared_top import emulator_top
 
-    top = Emulator(params)
+    top = emulator_top(params)
     Fragment.get(top, None)  # elaborated, so Amaranth does not warn that it went unused
     return {name: Shape.cast(member.shape).width for name, member in top.signature.members.items()
             if member.flow == wiring.Out}
@@ -203,7 +205,7 @@ def _parse(params: HardwareParams, text: str, cycles: int, tool: str) -> RunResu
             status = Status(**{n: bool(v) if n in _FLAG_FIELDS else v for n, v in zip(names, values, strict=True)})
         elif parts[0] == "B":
             owed, pp, pn = (int(x) for x in parts[1:4])
-            books.append(ChannelState(owed=owed, pend_pos=pp, pend_neg=pn))
+            books.append(ChannelState(owed=None if params.datapath == "shared" else owed, pend_pos=pp, pend_neg=pn))
         elif parts[0] == "D":
             done = True
     if not done or status is None or len(books) != params.n:
