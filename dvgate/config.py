@@ -29,7 +29,7 @@ from pydantic import (
 )
 
 from dvgate.errors import UserError
-from dvgate.params import SHARED_DEPTH, HardwareParams, shared_d_bits, shared_slots
+from dvgate.params import SHARED_DEPTH, HardwareParams, shared_d_bits, shared_pulse_min, shared_slots
 from dvgate.units import STANDARD_GRAVITY, QuantityError, parse_quantity
 
 M = TypeVar("M", bound=BaseModel)
@@ -369,6 +369,12 @@ class Config:
                   f"at least {need} cycles ({need * 1e9 / self.clock_hz:.4g} ns at this clock) with "
                   f"rate.datapath = 'shared' and {params.n} channel(s): every channel is visited while "
                   "the glitch filter holds the strobe")
+        period = shared_pulse_min(params.n)
+        if params.pulse_period_cyc < period:
+            _fail("pulses.gap", m.pulses.gap.text,
+                  f"a pulse width + gap of at least {period} cycles ({period * 1e9 / self.clock_hz:.4g} ns at this "
+                  f"clock; now {params.pulse_period_cyc}) with rate.datapath = 'shared' and {params.n} channel(s): "
+                  "the emitters' counts are folded once between two pulses")
         least = ((1 << shared_d_bits(params.n)) + params.clamp).bit_length() + 1
         if params.owed_bits < least:
             _fail("rate.owed_bits", str(params.owed_bits), f"at least {least} with rate.datapath = 'shared'")

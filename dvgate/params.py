@@ -42,6 +42,11 @@ def shared_d_bits(n: int) -> int:
     return (3 * shared_slots(n)).bit_length()
 
 
+def shared_pulse_min(n: int) -> int:
+    """Least pulse period (width + gap, cycles) of the shared datapath for ``n`` channels."""
+    return 2 * shared_slots(n) + SHARED_DEPTH
+
+
 @dataclass(frozen=True)
 class HardwareParams:
     """Integer description of one emulator.
@@ -84,7 +89,8 @@ class HardwareParams:
         ``"per_channel"`` or ``"shared"`` (see :data:`DATAPATHS`). The shared datapath
         keeps every channel at its initial rate, takes the ``arm`` input
         :attr:`arm_lead` cycles ahead and needs arm changes :attr:`arm_spacing` cycles
-        apart and a glitch filter of at least ``shared_slots + SHARED_DEPTH`` cycles.
+        apart, a glitch filter of at least ``shared_slots + SHARED_DEPTH`` cycles and
+        pulses (width + gap) of at least :attr:`shared_pulse_min` cycles.
     """
 
     clock_hz: float
@@ -148,6 +154,10 @@ class HardwareParams:
             if abs(rate) > 1 << self.frac_bits:
                 raise ValueError(f"the shared datapath needs rates of at most one pulse per cycle; channel {name!r} "
                                  f"has {rate / (1 << self.frac_bits):.6g}")
+        if self.pulse_period_cyc < self.shared_pulse_min:
+            raise ValueError(f"the shared datapath needs pulses (width + gap) of at least {self.shared_pulse_min} "
+                             f"cycles for {self.n} channel(s), not {self.pulse_period_cyc}: the emitters' counts "
+                             "are folded once between two pulses")
         if (1 << self.shared_d_bits) + self.clamp >= 1 << (self.owed_bits - 1):
             raise ValueError(f"the shared datapath needs owed_bits of at least "
                              f"{((1 << self.shared_d_bits) + self.clamp).bit_length() + 1}, not {self.owed_bits}")
@@ -161,6 +171,11 @@ class HardwareParams:
     def shared_d_bits(self) -> int:
         """Width of the step one visit of the shared datapath makes (:func:`shared_d_bits`)."""
         return shared_d_bits(self.n)
+
+    @property
+    def shared_pulse_min(self) -> int:
+        """Least ``width_cyc + gap_cyc`` of the shared datapath: two visits and a fold."""
+        return shared_pulse_min(self.n)
 
     @property
     def arm_lead(self) -> int:

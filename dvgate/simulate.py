@@ -77,9 +77,10 @@ def compare_results(a: RunResult, b: RunResult, names: tuple[str, ...], *, limit
             if va != vb:
                 out.append(f"status {field}: {va} against {vb}")
     for ch, (x, y) in enumerate(zip(a.channels, b.channels, strict=True)):
-        # The shared datapath keeps no owed register (its owed amount is None).
-        if x.owed is None or y.owed is None:
-            x, y = (x.pend_pos, x.pend_neg), (y.pend_pos, y.pend_neg)
+        # The shared datapath keeps no owed register and no pending counts in its
+        # emitters (None): its books are in block RAM, and its pulses say what they did.
+        if None in (x.owed, x.pend_pos, y.owed, y.pend_pos):
+            continue
         if x != y:
             out.append(f"channel {names[ch]!r} books: {x} against {y}")
     if a.edges != b.edges:

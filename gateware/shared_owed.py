@@ -40,10 +40,11 @@ clip is applied to the stored bits.
 from __future__ import annotations
 
 from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
-from amaranth.lib import data, memory, wiring
+from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.accumulator import ask_magnitude, ask_parts, ask_select, mag_shape, net_shape
+from dvgate.gateware.accumulator import ask_magnitude, ask_parts, ask_select, net_shape
+from dvgate.gateware.shared_emitter import FOLD_FLAGS
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -101,10 +102,10 @@ class SharedOwed(wiring.Component):
         ``armed`` of cycle ``k + arm_lead`` (the arm input, delayed to that point).
     load : Signal(n), in
         Per channel: the hand-over of this cycle's strobe is accepted (``take & accept``).
-    hand_neg, hand_mag : out
-        Per channel: what the next strobe asks for, as a sign (``Signal(n)``) and a
-        magnitude (``ArrayLayout(mag_shape, n)``); registers, ready ``SHARED_DEPTH``
-        cycles after the visit that targets the strobe.
+    hand_pos, hand_neg : Signal(n), out
+        Per channel: the next strobe asks for pulses on the positive (negative) line
+        beyond the rest pulses (registers, ready ``SHARED_DEPTH`` cycles after the visit
+        that targets the strobe; the counts themselves stay in the pipeline).
     hand_clmp : Signal(n), out
         Per channel: ``hand_n`` was clamped (burst).
     clip : Signal(n), out
@@ -121,10 +122,24 @@ class SharedOwed(wiring.Component):
             "ahead": In(range(max(2, params.min_width_cyc))),
             "armed_ahead": In(1),
             "load": In(params.n),
+            "hand_pos": Out(params.n),
             "hand_neg": Out(params.n),
-            "hand_mag": Out(data.ArrayLayout(mag_shape(params), params.n)),
             "hand_clmp": Out(params.n),
             "clip": Out(params.n),
+            # The emitters' counts (``gateware/shared_emitter.py``): their flags in, the
+            # fold and the accept bits out.
+            "em_tp": In(params.n),
+            "em_tn": In(params.n),
+            "em_lp": In(params.n),
+            "em_lp_rest": In(params.n),
+            "em_cleared": In(params.n),
+            "snap": Out(params.n),
+            "snap_acc": Out(params.n),
+            "fold": Out(params.n),
+            "fold_p": Out(FOLD_FLAGS),
+            "fold_n": Out(FOLD_FLAGS),
+            "acc_we": Out(params.n),
+            "acc_bits": Out(4),
         })
         l1, frac = chunks(params)
         cb = cycle_bits(params)
@@ -142,6 +157,8 @@ class SharedOwed(wiring.Component):
         self.owed_lo = memory.Memory(shape=l1, depth=params.n, init=[], attrs=_RAM_ATTRS)
         self.owed_mid = memory.Memory(shape=frac - l1, depth=params.n, init=[], attrs=_RAM_ATTRS)
         self.owed_whole = memory.Memory(shape=params.owed_bits, depth=params.n, init=[], attrs=_RAM_ATTRS)
+        # Each emitter's pending pulses per line, as of the last fold.
+        self.counts = memory.Memory(shape=2 * count_bits(params), depth=params.n, init=[], attrs=_RAM_ATTRS)
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -154,7 +171,7 @@ class SharedOwed(wiring.Component):
         nshape = net_shape(p)
 
         for name in ("step_lo", "step_mid", "step_whole", "anchor", "handed", "owed_lo", "owed_mid",
-                     "owed_whole"):
+                     "owed_whole", "counts"):
             m.submodules[name] = getattr(self, name)
         anchor_rd, anchor_wr = self.anchor.read_port(transparent_for=()), self.anchor.write_port()
         handed_rd, handed_wr = self.handed.read_port(transparent_for=()), self.handed.write_port()
@@ -164,6 +181,7 @@ class SharedOwed(wiring.Component):
         step_lo_rd = self.step_lo.read_port(transparent_for=())
         step_mid_rd = self.step_mid.read_port(transparent_for=())
         step_whole_rd = self.step_whole.read_port(transparent_for=())
+        counts_rd, counts_wr = self.counts.read_port(transparent_for=()), self.counts.write_port()
 
         # Accepted hand-overs wait here for the visit that moves past their strobe.
         loaded = Signal(n)
@@ -447,6 +465,7 @@ class SharedOwed(wiring.Component):
         # --- stage 7: the hand-over ---------------------------------------------------------
         ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
         ask_neg, ask_mag = ask_magnitude(m, p, s6_parts, ~s6_zero)
+        self._s6_parts, self._s6_zero = s6_parts, s6_zero  # for the accept bits (``_books``)
         m.d.comb += [
             handed_wr.addr.eq(s6_slot),
             handed_wr.data.eq(Cat(s6_code, ask_n)),
@@ -454,9 +473,139 @@ class SharedOwed(wiring.Component):
         ]
         for i in range(n):
             with m.If(s6_valid & (s6_slot == i) & s6_stb):
-                m.d.sync += [self.hand_neg[i].eq(ask_neg), self.hand_mag[i].eq(ask_mag),
+                m.d.sync += [self.hand_pos[i].eq(~ask_neg & (ask_mag != 0)),
+                             self.hand_neg[i].eq(ask_neg & (ask_mag != 0)),
                              self.hand_clmp[i].eq(ask_clmp)]
+
+        self._books(m, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
+                    s6_valid, s6_slot, s6_stb, ask_mag, counts_rd, counts_wr)
         return m
+
+    def _books(self, m: Module, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
+               s6_valid, s6_slot, s6_stb, ask_mag, counts_rd, counts_wr) -> None:
+        """The emitters' pending counts, folded at every visit that moves the channel on.
+
+        Stage 2 (the visit's cycle ``v + 2``) reads the emitter's flags, which clears them;
+        stage 4 writes the new counts, stage 5 the emitter's flags from them, stage 7 the
+        accept bits of the strobe the visit targets. A visit that leaves the channel to
+        the next one (its anchor strobe still ahead) folds nothing: no hand-over can be
+        loaded between its read and its writes (``docs/timing.md``, "The shared datapath").
+        """
+        p = self._params
+        n = p.n
+        cw = count_bits(p)
+        r = p.rest if p.scheme == "burst" else 0
+        ones = (1 << cw) - 1
+
+        # --- stage 2: read the flags ------------------------------------------------------
+        for i in range(n):
+            m.d.comb += [
+                self.snap[i].eq(r_valid & (r_slot == i)),
+                self.snap_acc[i].eq(r_valid & (r_slot == i) & r_stb),
+            ]
+        b3_tp      = Signal()
+        b3_tn      = Signal()
+        b3_load    = Signal()
+        b3_rest    = Signal()
+        b3_cleared = Signal()
+        m.d.sync += [
+            b3_tp.eq(self.em_tp.bit_select(r_slot, 1)),
+            b3_tn.eq(self.em_tn.bit_select(r_slot, 1)),
+            b3_load.eq(self.em_lp.bit_select(r_slot, 1)),
+            b3_rest.eq(self.em_lp_rest.bit_select(r_slot, 1)),
+            b3_cleared.eq(self.em_cleared.bit_select(r_slot, 1)),
+        ]
+
+        # --- stage 3: the loaded hand-over's pulses per line, less one ----------------------
+        # (``s2_copy`` is the net count handed over at the anchor strobe: the load folded.)
+        hand  = s2_copy.as_signed()
+        neg   = hand[-1]
+        rest  = Mux(b3_rest, r, 0)
+        np_m1 = Signal(cw)
+        nn_m1 = Signal(cw)
+        m.d.comb += [
+            np_m1.eq(rest - 1 + Mux(neg, 0, hand)),
+            # -hand = ~hand + 1, so rest - 1 - hand = rest + ~hand.
+            nn_m1.eq(Mux(neg, rest + ~hand, rest - 1)),
+            counts_rd.addr.eq(s2_slot),
+        ]
+        b4_np = Signal(cw)
+        b4_nn = Signal(cw)
+        b4_tp = Signal()
+        b4_tn = Signal()
+        b4_load = Signal()
+        b4_cleared = Signal()
+        m.d.sync += [
+            b4_np.eq(Mux(b3_load, np_m1, ones)), b4_nn.eq(Mux(b3_load, nn_m1, ones)),
+            b4_tp.eq(b3_tp), b4_tn.eq(b3_tn), b4_load.eq(b3_load), b4_cleared.eq(b3_cleared),
+        ]
+
+        # --- stage 4: the new counts: old + loaded - started -----------------------------------
+        # Disarming voids the stored counts; what was loaded and started since still counts.
+        old_p = Mux(b4_cleared, 0, counts_rd.data[:cw])
+        old_n = Mux(b4_cleared, 0, counts_rd.data[cw:])
+        new_p = Signal(cw)
+        new_n = Signal(cw)
+        m.d.comb += [
+            new_p.eq(_add_cin(old_p, b4_np, ~b4_tp, cw)),
+            new_n.eq(_add_cin(old_n, b4_nn, ~b4_tn, cw)),
+            counts_wr.addr.eq(s3_slot),
+            counts_wr.data.eq(Cat(new_p, new_n)),
+            counts_wr.en.eq(s3_valid),
+        ]
+        b5_p = Signal(cw)
+        b5_n = Signal(cw)
+        m.d.sync += [b5_p.eq(new_p), b5_n.eq(new_n)]
+
+        # --- stage 5: the emitter's flags; the total --------------------------------------
+        for i in range(n):
+            m.d.comb += self.fold[i].eq(s4_valid & (s4_slot == i))
+        m.d.comb += [
+            self.fold_p.ge1.eq(b5_p != 0),
+            self.fold_n.ge1.eq(b5_n != 0),
+        ]
+        b6_total = Signal(cw + 1)
+        m.d.sync += b6_total.eq(b5_p + b5_n)
+
+        # --- stage 6: the room left for a hand-over's pulses beyond its rest pulses --------
+        # With rest pulses, without; with no pulse started since stage 2, with one. And
+        # whether the largest count a strobe can ask for, the clamp (one for binary and
+        # ternary), fits: the compare of stage 7 is then against registers only.
+        rw = cw + 3
+        top_ask = p.clamp if p.scheme == "burst" else 1
+        bases = [p.backlog - 2 * r, p.backlog - 2 * r + 1, p.backlog, p.backlog + 1]
+        rooms = [Signal(signed(rw), name=f"room{k}") for k in range(4)]
+        top_ok = [Signal(name=f"room_top{k}") for k in range(4)]
+        for room, fits, base in zip(rooms, top_ok, bases, strict=True):
+            m.d.sync += [room.eq(base - b6_total), fits.eq(b6_total <= base - top_ask)]
+
+        # --- stage 7: the accept bits of the targeted strobe --------------------------------
+        # The count asked for is 0, the top one or (burst) the truncated amount, as
+        # ``ask_magnitude`` chooses it.
+        parts = self._s6_parts
+        some  = ~self._s6_zero
+        bits  = []
+        for room, fits in zip(rooms, top_ok, strict=True):
+            zero_fits = ~room[-1]
+            if p.scheme == "burst":
+                bits.append(Mux(some, Mux(parts.big_p | parts.big_n, fits, parts.low_mag <= room), zero_fits))
+            elif p.scheme == "binary":
+                bits.append(fits)
+            else:
+                bits.append(Mux(some & (parts.big_p | parts.big_n), fits, zero_fits))
+        m.d.comb += self.acc_bits.eq(Cat(*bits))
+        for i in range(n):
+            m.d.comb += self.acc_we[i].eq(s6_valid & (s6_slot == i) & s6_stb)
+
+
+def count_bits(params: HardwareParams) -> int:
+    """Width of an emitter's pending count of one line (``0 .. backlog``)."""
+    return params.backlog.bit_length()
+
+
+def _add_cin(a: Value, b: Value, cin: Value, width: int) -> Value:
+    """``(a + b + cin) mod 2**width`` as one adder: the carry-in rides below the lowest bit."""
+    return (Cat(1, a[:width]) + Cat(cin, b[:width]))[1:width + 1]
 
 
 def _groups(width: int) -> int:

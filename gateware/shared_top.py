@@ -16,9 +16,8 @@ from __future__ import annotations
 from amaranth.hdl import Cat, Module, Signal
 from amaranth.lib import wiring
 
-from dvgate.gateware.accumulator import hand_over_lines
-from dvgate.gateware.emitter import PulseEmitter
 from dvgate.gateware.faults import FaultStage
+from dvgate.gateware.shared_emitter import SharedEmitter
 from dvgate.gateware.shared_owed import SharedOwed
 from dvgate.gateware.strobe import StrobeDetector
 from dvgate.gateware.top import check_names, ignore_logic, port_members, status_logic
@@ -40,7 +39,7 @@ class SharedEmulator(wiring.Component):
     detector : StrobeDetector
     owed : SharedOwed
         The shared datapath (its block RAMs hold the owed amounts).
-    emitters : list of PulseEmitter
+    emitters : list of SharedEmitter
     fault_stages : list of FaultStage
     """
 
@@ -54,7 +53,7 @@ class SharedEmulator(wiring.Component):
                                        min_width_cyc=params.min_width_cyc,
                                        absence_cyc=params.absence_cyc)
         self.owed = SharedOwed(params)
-        self.emitters = [PulseEmitter(params) for _ in params.names]
+        self.emitters = [SharedEmitter(params) for _ in params.names]
         self.fault_stages = [FaultStage(params) for _ in params.names]
 
     def output_ports(self, channel: int) -> tuple[Signal, Signal]:
@@ -77,13 +76,13 @@ class SharedEmulator(wiring.Component):
         armed_next = arm_line[lead - 1]
 
         take     = Signal()
-        ignoring = ignore_logic(m, self, det.stb)
+        ignoring, ignoring_next = ignore_logic(m, self, det.stb)
         overrun  = Signal(p.n)
         clamped  = Signal(p.n)
         deferred = Signal(p.n)
         m.d.comb += [
             det.pin.eq(self.strobe),
-            take.eq(det.stb & armed & ~ignoring),
+
             self.strobes.eq(det.strobes),
             self.period.eq(det.period),
             self.host_absent.eq(det.host_absent),
@@ -92,19 +91,33 @@ class SharedEmulator(wiring.Component):
             owed.armed_ahead.eq(arm_line[0]),
         ]
 
+        # ``stb & armed & ~ignoring``, as a register: the emitters' logic then starts from flip-flops.
+        m.d.sync += take.eq(det.stb_next & armed_next & ~ignoring_next)
+
         for i, (name, em, fs) in enumerate(zip(p.names, self.emitters, self.fault_stages, strict=True)):
             m.submodules[f"{name}_emit"] = em
             m.submodules[f"{name}_fault"] = fs
             pos_port, neg_port = self.output_ports(i)
-            new_pos, new_neg = hand_over_lines(p, owed.hand_neg[i], owed.hand_mag[i], fs.faults.no_rest)
-            load = take & em.accept
             m.d.comb += [
-                em.load.eq(load),
-                em.new_pos.eq(new_pos),
-                em.new_neg.eq(new_neg),
+                em.take.eq(take),
+                em.hand_pos.eq(owed.hand_pos[i]),
+                em.hand_neg.eq(owed.hand_neg[i]),
+                em.rest.eq(~fs.faults.no_rest),
+                em.snap.eq(owed.snap[i]),
+                em.snap_acc.eq(owed.snap_acc[i]),
+                em.fold.eq(owed.fold[i]),
+                em.fold_p.eq(owed.fold_p),
+                em.fold_n.eq(owed.fold_n),
+                em.acc_we.eq(owed.acc_we[i]),
+                em.acc_in.eq(owed.acc_bits),
+                owed.em_tp[i].eq(em.tp),
+                owed.em_tn[i].eq(em.tn),
+                owed.em_lp[i].eq(em.lp),
+                owed.em_lp_rest[i].eq(em.lp_rest),
+                owed.em_cleared[i].eq(em.cleared),
                 em.armed.eq(armed),
                 em.armed_next.eq(armed_next),
-                owed.load[i].eq(load),
+                owed.load[i].eq(em.load),
                 fs.we.eq(self.fault_we & (self.fault_addr == i)),
                 fs.data.eq(self.fault_data),
                 fs.line_pos_next.eq(em.line_pos_next),
@@ -113,7 +126,7 @@ class SharedEmulator(wiring.Component):
                 pos_port.eq(fs.pos ^ p.active_low),
                 neg_port.eq(fs.neg ^ p.active_low),
                 overrun[i].eq(take & em.busy),
-                clamped[i].eq(load & owed.hand_clmp[i]),
+                clamped[i].eq(em.load & owed.hand_clmp[i]),
                 deferred[i].eq(take & ~em.accept),
             ]
         status_logic(m, self, take, overrun, clamped, deferred, owed.clip)

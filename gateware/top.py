@@ -146,7 +146,7 @@ def port_members(params: HardwareParams, *, rates: bool = True) -> dict[str, wir
     return members
 
 
-def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> Signal:
+def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> tuple[Signal, Signal]:
     """The ignore window of a top (its ``ignore_we``/``ignore_cycles`` ports) and its ``ignored`` count.
 
     The window counts down the cycles left; a write replaces it. Strobes detected in it
@@ -154,20 +154,24 @@ def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> Signal:
 
     Returns
     -------
-    Signal(1)
-        The window is open this cycle: a strobe now is not taken.
+    tuple of Signal(1)
+        The window is open this cycle (a strobe now is not taken), and whether it is open
+        the next cycle.
     """
     ignore_left = Signal(IGNORE_CYCLES_BITS, name="ignore_left")
     # ``ignore_left != 0`` kept as its own register: the strobe's take then waits for no
     # 32-bit test.
     ignoring    = Signal(name="ignore_open")
+    open_next   = Signal()
+    m.d.comb += open_next.eq(Mux(top.ignore_we, top.ignore_cycles != 0, ignoring & (ignore_left != 1)))
+    m.d.sync += ignoring.eq(open_next)
     with m.If(top.ignore_we):
-        m.d.sync += [ignore_left.eq(top.ignore_cycles), ignoring.eq(top.ignore_cycles != 0)]
+        m.d.sync += ignore_left.eq(top.ignore_cycles)
     with m.Elif(ignoring):
-        m.d.sync += [ignore_left.eq(ignore_left - 1), ignoring.eq(ignore_left != 1)]
+        m.d.sync += ignore_left.eq(ignore_left - 1)
     with m.If(stb & ignoring & (top.ignored != _EVENT_MAX)):
         m.d.sync += top.ignored.eq(top.ignored + 1)
-    return ignoring
+    return ignoring, open_next
 
 
 class Emulator(wiring.Component):
@@ -263,7 +267,7 @@ class Emulator(wiring.Component):
         armed       = Signal()
         stb         = Signal()
         take        = Signal()
-        ignoring    = ignore_logic(m, self, det.stb)
+        ignoring, _ = ignore_logic(m, self, det.stb)
         overrun     = Signal(p.n)
         clamped     = Signal(p.n)
         deferred    = Signal(p.n)

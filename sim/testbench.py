@@ -415,9 +415,8 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
             ignored=ctx.get(top.ignored),
         )
         if params.datapath == "shared":
-            results["channels"] = tuple(
-                ChannelState(owed=None, pend_pos=ctx.get(em.pend_pos), pend_neg=ctx.get(em.pend_neg))
-                for em in top.emitters)
+            results["channels"] = tuple(ChannelState(owed=None, pend_pos=None, pend_neg=None)
+                                        for _ in top.emitters)
             if anchors is not None:
                 anchors[:] = _shared_anchors(ctx, top, params, n_cyc)
         else:

@@ -346,13 +346,14 @@ class ChannelState:
     owed : int or None
         The owed amount, fixed point; None from the shared datapath, which keeps no owed
         register (``run_amaranth``'s ``anchors`` gives what it holds).
-    pend_pos, pend_neg : int
-        Pulses waiting in the emitter on each line.
+    pend_pos, pend_neg : int or None
+        Pulses waiting in the emitter on each line; None from the shared datapath, which
+        keeps them in block RAM.
     """
 
     owed: int | None
-    pend_pos: int
-    pend_neg: int
+    pend_pos: int | None
+    pend_neg: int | None
 
 
 @dataclass(frozen=True)
