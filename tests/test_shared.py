@@ -212,11 +212,15 @@ def test_the_compiled_engine_and_programs_refuse_the_shared_datapath(tmp_path) -
         plan_run(Program.__new__(Program), load_config(path))
 
 
-def test_proofs_of_a_shared_config_cover_the_emitter() -> None:
+def test_proofs_refuse_a_shared_config(tmp_path, capsys) -> None:
+    from dvgate.cli import main
     from dvgate.sim.formal import plan
 
-    p = parse_config(_config(datapath="shared")).hw
-    assert [t.name for t in plan(p)] == ["emitter"]
+    assert plan(parse_config(_config(datapath="shared")).hw) == []
+    path = tmp_path / "shared.toml"
+    path.write_text(SHARED_CONFIG)
+    assert main(["prove", str(path)]) == 2
+    assert "checked against the reference model" in capsys.readouterr().err
 
 
 def test_verilog_of_a_shared_config_has_no_rate_port() -> None:
