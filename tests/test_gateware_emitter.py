@@ -1,6 +1,12 @@
 """PulseEmitter against hand-worked cycles of docs/timing.md ("Pulse-pair emitter")."""
 
-from dvgate.gateware.emitter import PulseEmitter
+import pytest
+from amaranth.hdl import Cat, Module
+from amaranth.lib import wiring
+from amaranth.lib.wiring import In, Out
+from amaranth.sim import Simulator
+
+from dvgate.gateware.emitter import PulseEmitter, above
 from dvgate.params import HardwareParams
 from dvgate.sim.testbench import run_cycles
 
@@ -101,3 +107,68 @@ def test_disarm_cuts_a_pulse_and_clears() -> None:
     assert (rows[5]["pend_pos"], rows[5]["busy"]) == (0, 0)
     # After re-arming, last is negative again: the next burst starts positive.
     assert found[1:] == [("pos", 9, 13), ("neg", 15, 19)]
+
+
+def test_one_disarmed_cycle_ends_the_pulse() -> None:
+    # Armed low at cycle 3 only: the output is idle at 3 and the emitter is cleared, so
+    # the pulse does not come back at 4 although armed is high again.
+    p = params(width_cyc=4, gap_cyc=2)
+    arm = [1, 1, 1, 0] + [1] * 20
+    rows = run(p, 16, {1: (2, 0)}, arm=arm)
+    assert pulses(rows) == [("pos", 2, 3)]
+    assert (rows[4]["pend_pos"], rows[4]["busy"]) == (0, 0)
+
+
+@pytest.mark.parametrize(("width", "gap"), [(5, 1), (1, 4), (3, 3)])
+def test_period_and_busy_for_other_widths_and_gaps(width: int, gap: int) -> None:
+    # Three pulses loaded at 2 start at 2, 2 + P and 2 + 2P (P = W + G), each high W
+    # cycles from the cycle after its start; busy until the last gap's final cycle.
+    period = width + gap
+    rows = run(params(width_cyc=width, gap_cyc=gap, order="grouped"), 4 + 3 * period, {2: (3, 0)})
+    assert pulses(rows) == [("pos", 3 + j * period, 3 + j * period + width) for j in range(3)]
+    assert [k for k, r in enumerate(rows) if r["busy"]] == list(range(3, 3 + 3 * period))
+
+
+def test_counts_at_the_full_width_of_the_pending_registers() -> None:
+    # Backlog 64 = one strobe's worth (rest 1, clamp 62): the pending registers and the
+    # hand-over's counts have the same width, so the pending update works modulo that
+    # width. Loading 63 + 1 starts a positive pulse at once (62 and 1 left); then 63
+    # pending leave room for one more pulse, not two.
+    p = params(rest=1, clamp=62, backlog=64, width_cyc=1, gap_cyc=1)
+    rows = run(p, 4, {0: (63, 1)}, offers={1: (1, 0), 2: (1, 1)})
+    assert [r["accept"] for r in rows[:3]] == [1, 1, 0]
+    assert (rows[1]["pend_pos"], rows[1]["pend_neg"]) == (62, 1)
+    assert (rows[3]["pend_pos"], rows[3]["pend_neg"]) == (62, 0)
+
+
+class _Above(wiring.Component):
+    """``above(value, limit)`` for every limit of ``limits``, one output bit each."""
+
+    def __init__(self, width: int, limits: list[int]) -> None:
+        self._limits = limits
+        super().__init__({"value": In(width), "above": Out(len(limits))})
+
+    def elaborate(self, platform) -> Module:
+        m = Module()
+        m.d.comb += self.above.eq(Cat(above(self.value, limit) for limit in self._limits))
+        return m
+
+
+def test_above_is_the_integer_compare() -> None:
+    # Every value of small widths against every limit around their range (Python's > is
+    # the reference).
+    for width in range(1, 6):
+        limits = list(range(-1, (1 << width) + 1))
+        dut = _Above(width, limits)
+        got: list[int] = []
+
+        async def bench(ctx, dut: _Above = dut, width: int = width, got: list[int] = got) -> None:
+            for value in range(1 << width):
+                ctx.set(dut.value, value)
+                got.append(ctx.get(dut.above))
+
+        sim = Simulator(dut)
+        sim.add_testbench(bench)
+        sim.run()
+        for value, bits in enumerate(got):
+            assert [(bits >> i) & 1 for i in range(len(limits))] == [int(value > c) for c in limits], (width, value)
