@@ -240,7 +240,7 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
         # expects a strobe next cycle, so it holds through every quiet span.
         holding |= {f"rate_regs.shadow{i}", f"{name}_acc.hand_n", f"{name}_acc.hand_clmp"}
         # The emitter's own line registers drive nothing once a fault stage follows it.
-        optional |= {f"{name}_emit.timer", f"{name}_emit.last", f"{name}_emit.pos", f"{name}_emit.neg",
+        optional |= {f"{name}_emit.last", f"{name}_emit.pos", f"{name}_emit.neg",
                      f"{name}_fault.faults", f"{name}_fault.phase", f"{name}_fault.pos", f"{name}_fault.neg"}
     return needed, holding, optional
 

@@ -376,8 +376,9 @@ class Target:
 
 
 def _timer_span(params: HardwareParams) -> int:
-    # The emitter's timer can hold any value of its width in a state the induction starts
-    # from; the depth must outlast such a pulse or gap.
+    # The emitter's pulse-period counter (``mode``) can hold any value of its width in a
+    # state the induction starts from; the depth must outlast such a pulse or gap (a pulse
+    # longer than W shows within W + 1 cycles, as the counter's reset span bounds).
     return 1 << (max(params.width_cyc, params.gap_cyc, 2) - 1).bit_length()
 
 
