@@ -23,7 +23,8 @@ The visit at ``v`` serves the *window* of cycles ``[v + Q, v + P + Q)`` (``Q`` =
 in view (``ahead``), else ``v + P + Q``. Windows of one channel tile the time line, and a
 strobe in a window is in view at the visit (the glitch filter lasts at least ``P + Q``
 cycles), so every strobe is the target of one visit per channel, whose hand-over
-(``hand_n``) is ready ``Q`` cycles after the visit. A strobe in view that never comes (the
+(``hand_pos``/``hand_neg``, ``hand_clmp``, and the emitter's accept bits) is ready ``Q``
+cycles after the visit. A strobe in view that never comes (the
 pin fell) is a target nothing is handed over at. Whether a strobe's hand-over was accepted
 is only known at the strobe; a visit whose anchor strobe is still ahead leaves the channel
 alone (the next visit, ``P`` cycles later, moves it on).
@@ -35,6 +36,12 @@ taken strobe (``docs/timing.md``, "Status").
 The owed amount is stored raw, in three chunks that a skewed adder updates one per cycle,
 with a code saying whether it is to be read as raw, 0, or the upper or lower limit, so no
 clip is applied to the stored bits.
+
+The emitters' pending counts are kept here as well (``_books``; the emitters,
+``gateware/shared_emitter.py``, keep flags): each visit that moves a channel on folds in
+the pulses it started and the hand-over it loaded since the last one, writes back whether
+each line has a pulse pending, and, for a strobe target, whether its hand-over fits the
+backlog.
 """
 
 from __future__ import annotations
