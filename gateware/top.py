@@ -163,7 +163,12 @@ def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> tuple[Signal, 
     # 32-bit test.
     ignoring    = Signal(name="ignore_open")
     open_next   = Signal()
-    m.d.comb += open_next.eq(Mux(top.ignore_we, top.ignore_cycles != 0, ignoring & (ignore_left != 1)))
+    # An if, not a Mux: in a Verilog simulation that leaves the port undriven the window
+    # then stays closed (as before this register), rather than turning every strobe to x.
+    with m.If(top.ignore_we):
+        m.d.comb += open_next.eq(top.ignore_cycles != 0)
+    with m.Else():
+        m.d.comb += open_next.eq(ignoring & (ignore_left != 1))
     m.d.sync += ignoring.eq(open_next)
     with m.If(top.ignore_we):
         m.d.sync += ignore_left.eq(top.ignore_cycles)
