@@ -162,6 +162,7 @@ def test_config_chooses_the_shared_datapath() -> None:
     ({**_config(datapath="shared"), "strobe": {"min_width": "300 ns"}}, "strobe.min_width"),
     ({**_config(datapath="shared"), "link": {"baud": 115200}}, "rate.datapath"),
     ({**_config(datapath="shared"), "rate": {"datapath": "shared", "owed_bits": 7}}, "rate.owed_bits"),
+    ({**_config(datapath="shared"), "pulses": {"width": "100 ns", "gap": "100 ns"}}, "pulses.gap"),
 ])
 def test_config_limits_of_the_shared_datapath(raw: dict, field: str) -> None:
     with pytest.raises(Exception, match=field.replace(".", r"\.")):
