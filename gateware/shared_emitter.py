@@ -23,14 +23,11 @@ bits' counts and their strobe at most one pulse starts.
 from __future__ import annotations
 
 from amaranth.hdl import Const, Module, Mux, Signal, Value
-from amaranth.lib import data, wiring
+from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.emitter import NEG, POS, Mode
 from dvgate.params import HardwareParams
-
-#: A line's count after a fold, as the flags need it: at least one pulse pending.
-FOLD_FLAGS = data.StructLayout({"ge1": 1})
 
 
 class SharedEmitter(wiring.Component):
@@ -53,9 +50,10 @@ class SharedEmitter(wiring.Component):
         As for :class:`~dvgate.gateware.emitter.PulseEmitter`.
     snap, snap_acc, fold, acc_we : Signal(1), in
         From the pipeline: it reads this channel's flags now (and starts its accept
-        bits); it writes the fold's flags (``fold_p``, ``fold_n``); it writes the accept
+        bits); it writes the fold's flags (``fold_pos``, ``fold_neg``); it writes the accept
         bits (``acc_in``: with rest pulses, without; none or one pulse started since).
-    fold_p, fold_n : FOLD_FLAGS, in
+    fold_pos, fold_neg : Signal(1), in
+        After the fold, a pulse is pending on the line.
     acc_in : Signal(4), in
     accept, load, busy : Signal(1), out
         The hand-over fits the backlog; it is loaded this cycle; the emitter is not idle.
@@ -78,8 +76,8 @@ class SharedEmitter(wiring.Component):
             "snap": In(1),
             "snap_acc": In(1),
             "fold": In(1),
-            "fold_p": In(FOLD_FLAGS),
-            "fold_n": In(FOLD_FLAGS),
+            "fold_pos": In(1),
+            "fold_neg": In(1),
             "acc_we": In(1),
             "acc_in": In(4),
             "accept": Out(1),
@@ -174,7 +172,7 @@ class SharedEmitter(wiring.Component):
             # The flags follow the folds only: after a start the next one is a pulse period
             # away, and a fold that counts the start comes first (``shared_pulse_min``).
             with m.If(self.fold):
-                m.d.sync += [hp.eq(self.fold_p.ge1), hn.eq(self.fold_n.ge1)]
+                m.d.sync += [hp.eq(self.fold_pos), hn.eq(self.fold_neg)]
                 with m.If(snapped):
                     m.d.sync += self.lp.eq(0)
             with m.If(self.load):

@@ -51,7 +51,6 @@ from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.accumulator import ask_magnitude, ask_parts, ask_select, net_shape
-from dvgate.gateware.shared_emitter import FOLD_FLAGS
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -143,8 +142,8 @@ class SharedOwed(wiring.Component):
             "snap": Out(params.n),
             "snap_acc": Out(params.n),
             "fold": Out(params.n),
-            "fold_p": Out(FOLD_FLAGS),
-            "fold_n": Out(FOLD_FLAGS),
+            "fold_pos": Out(1),
+            "fold_neg": Out(1),
             "acc_we": Out(params.n),
             "acc_bits": Out(4),
         })
@@ -472,7 +471,6 @@ class SharedOwed(wiring.Component):
         # --- stage 7: the hand-over ---------------------------------------------------------
         ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
         ask_neg, ask_mag = ask_magnitude(m, p, s6_parts, ~s6_zero)
-        self._s6_parts, self._s6_zero = s6_parts, s6_zero  # for the accept bits (``_books``)
         m.d.comb += [
             handed_wr.addr.eq(s6_slot),
             handed_wr.data.eq(Cat(s6_code, ask_n)),
@@ -485,11 +483,11 @@ class SharedOwed(wiring.Component):
                              self.hand_clmp[i].eq(ask_clmp)]
 
         self._books(m, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
-                    s6_valid, s6_slot, s6_stb, ask_mag, counts_rd, counts_wr)
+                    s6_valid, s6_slot, s6_stb, s6_parts, s6_zero, counts_rd, counts_wr)
         return m
 
     def _books(self, m: Module, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
-               s6_valid, s6_slot, s6_stb, ask_mag, counts_rd, counts_wr) -> None:
+               s6_valid, s6_slot, s6_stb, s6_parts, s6_zero, counts_rd, counts_wr) -> None:
         """The emitters' pending counts, folded at every visit that moves the channel on.
 
         Stage 2 (the visit's cycle ``v + 2``) reads the emitter's flags, which clears them;
@@ -568,8 +566,8 @@ class SharedOwed(wiring.Component):
         for i in range(n):
             m.d.comb += self.fold[i].eq(s4_valid & (s4_slot == i))
         m.d.comb += [
-            self.fold_p.ge1.eq(b5_p != 0),
-            self.fold_n.ge1.eq(b5_n != 0),
+            self.fold_pos.eq(b5_p != 0),
+            self.fold_neg.eq(b5_n != 0),
         ]
         b6_total = Signal(cw + 1)
         m.d.sync += b6_total.eq(b5_p + b5_n)
@@ -589,8 +587,8 @@ class SharedOwed(wiring.Component):
         # --- stage 7: the accept bits of the targeted strobe --------------------------------
         # The count asked for is 0, the top one or (burst) the truncated amount, as
         # ``ask_magnitude`` chooses it.
-        parts = self._s6_parts
-        some  = ~self._s6_zero
+        parts = s6_parts
+        some  = ~s6_zero
         bits  = []
         for room, fits in zip(rooms, top_ok, strict=True):
             zero_fits = ~room[-1]
