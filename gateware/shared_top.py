@@ -19,8 +19,7 @@ from amaranth.lib import wiring
 from dvgate.gateware.faults import FaultStage
 from dvgate.gateware.shared_emitter import SharedEmitter
 from dvgate.gateware.shared_owed import SharedOwed
-from dvgate.gateware.strobe import StrobeDetector
-from dvgate.gateware.top import check_names, ignore_logic, port_members, status_logic
+from dvgate.gateware.top import Emulator, check_names, ignore_logic, port_members, status_logic, strobe_detector
 from dvgate.params import HardwareParams
 
 
@@ -49,17 +48,13 @@ class SharedEmulator(wiring.Component):
         check_names(params)
         self._params = params
         super().__init__(port_members(params, rates=False))
-        self.detector = StrobeDetector(edge_rising=params.edge_rising,
-                                       min_width_cyc=params.min_width_cyc,
-                                       absence_cyc=params.absence_cyc)
+        self.detector = strobe_detector(params)
         self.owed = SharedOwed(params)
         self.emitters = [SharedEmitter(params) for _ in params.names]
         self.fault_stages = [FaultStage(params) for _ in params.names]
 
-    def output_ports(self, channel: int) -> tuple[Signal, Signal]:
-        """The physical ``(pos, neg)`` output ports of channel ``channel``."""
-        name = self._params.names[channel]
-        return getattr(self, f"{name}_pos"), getattr(self, f"{name}_neg")
+    # The same ports, named after the channels, as the per-channel top.
+    output_ports = Emulator.output_ports
 
     def elaborate(self, platform) -> Module:
         m = Module()
@@ -137,5 +132,4 @@ def emulator_top(params: HardwareParams) -> wiring.Component:
     """The emulator's top for ``params``: :class:`SharedEmulator` or :class:`~dvgate.gateware.top.Emulator`."""
     if params.datapath == "shared":
         return SharedEmulator(params)
-    from dvgate.gateware.top import Emulator
     return Emulator(params)

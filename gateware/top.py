@@ -146,6 +146,12 @@ def port_members(params: HardwareParams, *, rates: bool = True) -> dict[str, wir
     return members
 
 
+def strobe_detector(params: HardwareParams) -> StrobeDetector:
+    """The strobe detector of a top: the config's edge, glitch filter and absence timeout."""
+    return StrobeDetector(edge_rising=params.edge_rising, min_width_cyc=params.min_width_cyc,
+                          absence_cyc=params.absence_cyc)
+
+
 def ignore_logic(m: Module, top: wiring.Component, stb: Value) -> tuple[Signal, Signal]:
     """The ignore window of a top (its ``ignore_we``/``ignore_cycles`` ports) and its ``ignored`` count.
 
@@ -249,9 +255,7 @@ class Emulator(wiring.Component):
         super().__init__(port_members(params))
 
         # Built here, not in elaborate(), so testbenches can reach their signals.
-        self.detector = StrobeDetector(edge_rising=params.edge_rising,
-                                       min_width_cyc=params.min_width_cyc,
-                                       absence_cyc=params.absence_cyc)
+        self.detector = strobe_detector(params)
         self.rate_regs = RateRegisters(params)
         self.accumulators = [RateAccumulator(params) for _ in params.names]
         self.emitters = [PulseEmitter(params) for _ in params.names]
