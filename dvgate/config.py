@@ -29,7 +29,7 @@ from pydantic import (
 )
 
 from dvgate.errors import UserError
-from dvgate.params import SHARED_DEPTH, HardwareParams, shared_d_bits, shared_pulse_min, shared_slots
+from dvgate.params import HardwareParams, shared_min_width, shared_owed_bits_min, shared_pulse_min
 from dvgate.units import STANDARD_GRAVITY, QuantityError, parse_quantity
 
 M = TypeVar("M", bound=BaseModel)
@@ -363,7 +363,7 @@ class Config:
         if m.link:
             _fail("rate.datapath", "shared", "'per_channel' with a [link] section: the host link writes "
                   "rates, and the shared datapath keeps every channel at its config rate")
-        need = shared_slots(params.n) + SHARED_DEPTH
+        need = shared_min_width(params.n)
         if params.min_width_cyc < need:
             _fail("strobe.min_width", m.strobe.min_width.text,
                   f"at least {need} cycles ({need * 1e9 / self.clock_hz:.4g} ns at this clock) with "
@@ -375,7 +375,7 @@ class Config:
                   f"a pulse width + gap of at least {period} cycles ({period * 1e9 / self.clock_hz:.4g} ns at this "
                   f"clock; now {params.pulse_period_cyc}) with rate.datapath = 'shared' and {params.n} channel(s): "
                   "the emitters' counts are folded once between two pulses")
-        least = ((1 << shared_d_bits(params.n)) + params.clamp).bit_length() + 1
+        least = shared_owed_bits_min(params.n, params.clamp)
         if params.owed_bits < least:
             _fail("rate.owed_bits", str(params.owed_bits), f"at least {least} with rate.datapath = 'shared'")
 

@@ -42,6 +42,16 @@ def shared_d_bits(n: int) -> int:
     return (3 * shared_slots(n)).bit_length()
 
 
+def shared_min_width(n: int) -> int:
+    """Least glitch filter (cycles) of the shared datapath: every channel is visited while it holds."""
+    return shared_slots(n) + SHARED_DEPTH
+
+
+def shared_owed_bits_min(n: int, clamp: int) -> int:
+    """Least ``owed_bits`` of the shared datapath: room for a step's whole part and a hand-over."""
+    return ((1 << shared_d_bits(n)) + clamp).bit_length() + 1
+
+
 def shared_pulse_min(n: int) -> int:
     """Least pulse period (width + gap, cycles) of the shared datapath for ``n`` channels."""
     return 2 * shared_slots(n) + SHARED_DEPTH
@@ -145,7 +155,7 @@ class HardwareParams:
 
     def _check_shared(self) -> None:
         """The shared datapath's own limits (``dvgate.gateware.shared_owed``)."""
-        need = self.shared_slots + SHARED_DEPTH
+        need = shared_min_width(self.n)
         if self.min_width_cyc < need:
             raise ValueError(f"the shared datapath needs a glitch filter (min_width) of at least {need} cycles "
                              f"for {self.n} channel(s), not {self.min_width_cyc}: every channel is visited "
@@ -158,9 +168,9 @@ class HardwareParams:
             raise ValueError(f"the shared datapath needs pulses (width + gap) of at least {self.shared_pulse_min} "
                              f"cycles for {self.n} channel(s), not {self.pulse_period_cyc}: the emitters' counts "
                              "are folded once between two pulses")
-        if (1 << self.shared_d_bits) + self.clamp >= 1 << (self.owed_bits - 1):
-            raise ValueError(f"the shared datapath needs owed_bits of at least "
-                             f"{((1 << self.shared_d_bits) + self.clamp).bit_length() + 1}, not {self.owed_bits}")
+        least = shared_owed_bits_min(self.n, self.clamp)
+        if self.owed_bits < least:
+            raise ValueError(f"the shared datapath needs owed_bits of at least {least}, not {self.owed_bits}")
 
     @property
     def shared_slots(self) -> int:
