@@ -212,6 +212,19 @@ def find_tool(exe: str) -> str | None:
     return shutil.which(exe)
 
 
+def synth_options(device: str) -> list[str]:
+    """Options for Yosys' synthesis command that the device needs.
+
+    ``synth_ice40`` maps logic for the HX parts' delays unless told the device: an
+    UltraPlus part (``iCE40UP``), whose LUTs and routing are slower, gets ``-device u``
+    and an LP part ``-device lp`` (Yosys' ``help synth_ice40``). Other families need none.
+    """
+    for prefix, option in (("iCE40UP", "u"), ("iCE40LP", "lp")):
+        if device.startswith(prefix):
+            return ["-device", option]
+    return []
+
+
 def find_tools(family: str) -> dict[str, str]:
     """The toolchain's executables as Amaranth's environment variables want them.
 
@@ -274,6 +287,7 @@ def build(cfg: Config, pin_map: PinMap, out_dir: str | Path, *, plan_only: bool 
     tools = None if plan_only else find_tools(pin_map.family)
     top, platform = prepare_top(cfg, pin_map, pll)
     overrides = {"debug_verilog": True,
+                 "synth_opts": synth_options(pin_map.device),
                  "nextpnr_opts": ["--report", REPORT, "--timing-allow-fail", "--seed", str(seed)]}
     plan = platform.prepare(top, name=NAME, **overrides)
 

@@ -22,11 +22,11 @@ bits' counts and their strobe at most one pulse starts.
 
 from __future__ import annotations
 
-from amaranth.hdl import Const, Module, Mux, Signal, Value
+from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.emitter import NEG, POS, Mode
+from dvgate.gateware.emitter import NEG, POS
 from dvgate.params import HardwareParams
 
 
@@ -98,15 +98,22 @@ class SharedEmitter(wiring.Component):
         m = Module()
         p = self._params
         r = p.rest if p.scheme == "burst" else 0
+        period = p.width_cyc + p.gap_cyc
 
-        mode   = Signal(Mode)
-        timer  = Signal(range(max(p.width_cyc, p.gap_cyc, 2)))
-        last   = Signal(init=NEG)
-        hp     = Signal()
-        hn     = Signal()
+        # The pulse timing as one count down from the start (``period - 1`` after it) and
+        # flags that say ahead of time what the count's compares would: a strobe's cycle
+        # then starts from flip-flops only (``docs/perf_resources.md``).
+        count = Signal(range(period))
+        ready = Signal(init=1)   # idle, or the gap's last cycle: a pulse may start
+        go    = Signal()         # ready and armed
+        high  = Signal()         # the line is high
+        ends  = Signal()         # the pulse's last high cycle
+        last  = Signal(init=NEG)
+        hp    = Signal()
+        hn    = Signal()
         snapped = Signal()   # the fold under way includes ``lp``
-        since  = Signal()    # a pulse started since the accept bits' counts
-        acc    = Signal(4)
+        since = Signal()     # a pulse started since the accept bits' counts
+        acc   = Signal(4)
 
         # Accept: the pipeline's bit for the rest pulses in force and the pulses since.
         m.d.comb += [
@@ -114,75 +121,72 @@ class SharedEmitter(wiring.Component):
             self.load.eq(self.take & self.accept),
         ]
 
-        # The hand-over the flags do not include yet: this cycle's, or one loaded earlier.
-        # Whether a pulse starts, and on which line, is worked out for both outcomes of this
-        # cycle's strobe from registers; ``take``, which comes from afar, only picks one.
-        may_start = Signal()
-        m.d.comb += [
-            may_start.eq((mode == Mode.IDLE) | ((mode == Mode.GAP) & (timer == 0))),
-            self.busy.eq(mode != Mode.IDLE),
-        ]
-        def decide(load: Value) -> tuple[Value, Value]:
-            held    = load | self.lp
-            rest_in = Mux(load, self.rest, self.lp_rest) & (r > 0)
-            has_pos = hp | (held & (rest_in | self.hand_pos))
-            has_neg = hn | (held & (rest_in | self.hand_neg))
-            if p.order == "interleaved":
-                pick = Mux(has_pos & has_neg, ~last, ~has_pos)
-            else:
-                pick = ~has_pos
-            return self.armed & may_start & (has_pos | has_neg), pick
-
-        start_t, pick_t = decide(self.accept)
-        start_n, pick_n = decide(Const(0))
+        # What each line has waiting, with this cycle's hand-over loaded (``with_t``) or
+        # not: a hand-over loaded earlier and not folded in yet adds its rest pulses and
+        # its line, a load now its own instead. Then the line a start picks in each case,
+        # the pulse on the line held high or started (``line_t``, ``line_n``), and
+        # whether a pulse starts: the load, which waits for ``take`` from afar and the
+        # accept bit, picks one of the two as late as it can.
+        rest_now = self.rest & (r > 0)
+        rest_old = self.lp_rest & (r > 0)
+        has = {}
+        for line, held, hand in ((POS, hp, self.hand_pos), (NEG, hn, self.hand_neg)):
+            has[line] = (held | rest_now | hand, held | (self.lp & (rest_old | hand)))
+        stays = self.armed & high & ~ends
+        took = {}
+        for line in (POS, NEG):
+            other = NEG if line == POS else POS
+            outcomes = []
+            for k in (0, 1):
+                mine, theirs = has[line][k], has[other][k]
+                if p.order == "interleaved":
+                    # Both lines waiting: the one not started last; else the one that waits.
+                    picked = mine & (~theirs | (last == other))
+                else:
+                    picked = mine & ~theirs if line == NEG else mine
+                outcomes.append(picked)
+            took_t, took_n = outcomes
+            took[line] = Signal(name=f"took_{line}")
+            line_next = self.line_pos_next if line == POS else self.line_neg_next
+            high_on = stays & (last == line)
+            m.d.comb += [
+                took[line].eq(go & Mux(self.load, took_t, took_n)),
+                line_next.eq(Mux(self.load, self.armed_next & ((go & took_t) | high_on),
+                                 self.armed_next & ((go & took_n) | high_on))),
+            ]
         start = Signal()
-        pick  = Signal()
-        m.d.comb += [start.eq(Mux(self.take, start_t, start_n)), pick.eq(Mux(self.take, pick_t, pick_n))]
-        took_p = start & (pick == POS)
-        took_n = start & (pick == NEG)
+        m.d.comb += start.eq(go & Mux(self.load, has[POS][0] | has[NEG][0], has[POS][1] | has[NEG][1]))
+        m.d.sync += [self.pos.eq(self.line_pos_next), self.neg.eq(self.line_neg_next)]
 
-        mode_next  = Signal(Mode)
-        timer_next = Signal.like(timer)
-        last_next  = Signal.like(last)
-        m.d.comb += [mode_next.eq(mode), timer_next.eq(timer), last_next.eq(last)]
-        with m.If(~self.armed):
-            m.d.comb += [mode_next.eq(Mode.IDLE), timer_next.eq(0), last_next.eq(NEG)]
-        with m.Elif(start):
-            m.d.comb += [mode_next.eq(Mode.HIGH), timer_next.eq(p.width_cyc - 1), last_next.eq(pick)]
-        with m.Elif(may_start):
-            m.d.comb += mode_next.eq(Mode.IDLE)
-        with m.Elif((mode == Mode.HIGH) & (timer == 0)):
-            m.d.comb += [mode_next.eq(Mode.GAP), timer_next.eq(p.gap_cyc - 1)]
-        with m.Elif(timer != 0):
-            m.d.comb += timer_next.eq(timer - 1)
-        high_next = (mode_next == Mode.HIGH) & self.armed_next
-        m.d.comb += [
-            self.line_pos_next.eq(high_next & (last_next == POS)),
-            self.line_neg_next.eq(high_next & (last_next == NEG)),
-        ]
+        # Next values as plain expressions of ``start`` and registers, with no register
+        # holding its value through a choice: synthesis would otherwise make an enable
+        # of ``start``, a level of logic and a slow route more on the strobe's cycle.
+        armed = self.armed
+        ready_next = Signal()
+        m.d.comb += ready_next.eq(~armed | (~start & (ready | (count == 1))))
         m.d.sync += [
-            mode.eq(mode_next), timer.eq(timer_next), last.eq(last_next),
-            self.pos.eq(self.line_pos_next), self.neg.eq(self.line_neg_next),
-        ]
-
-        with m.If(~self.armed):
-            m.d.sync += [hp.eq(0), hn.eq(0), self.tp.eq(0), self.tn.eq(0), self.lp.eq(0), since.eq(0),
-                         self.cleared.eq(1)]
-        with m.Else():
+            ready.eq(ready_next),
+            go.eq(ready_next & self.armed_next),
+            # The count is 0 while ready.
+            count.eq(Mux(start, period - 1, Mux(armed & ~ready, count - 1, 0))),
+            high.eq(armed & (start | (high & ~ends))),
+            ends.eq(armed & Mux(start, p.width_cyc == 1, count == p.gap_cyc + 1)),
+            self.busy.eq(armed & (start | ~ready)),
+            last.eq(~armed | took[NEG] | (last & ~took[POS])),
+            since.eq(armed & ((since & ~self.snap_acc) | start)),
+            self.tp.eq(armed & ((self.tp & ~self.snap) | took[POS])),
+            self.tn.eq(armed & ((self.tn & ~self.snap) | took[NEG])),
+            self.cleared.eq(~armed | (self.cleared & ~self.snap)),
             # The flags follow the folds only: after a start the next one is a pulse period
             # away, and a fold that counts the start comes first (``shared_pulse_min``).
-            with m.If(self.fold):
-                m.d.sync += [hp.eq(self.fold_pos), hn.eq(self.fold_neg)]
-                with m.If(snapped):
-                    m.d.sync += self.lp.eq(0)
-            with m.If(self.load):
-                m.d.sync += [self.lp.eq(1), self.lp_rest.eq(self.rest)]
-            m.d.sync += [
-                self.tp.eq((self.tp & ~self.snap) | took_p),
-                self.tn.eq((self.tn & ~self.snap) | took_n),
-                since.eq((since & ~self.snap_acc) | start),
-                self.cleared.eq(self.cleared & ~self.snap),
-            ]
+            self.lp.eq(armed & (self.load | (self.lp & ~(self.fold & snapped)))),
+        ]
+        with m.If(~armed):
+            m.d.sync += [hp.eq(0), hn.eq(0)]
+        with m.Elif(self.fold):
+            m.d.sync += [hp.eq(self.fold_pos), hn.eq(self.fold_neg)]
+        with m.If(armed & self.load):
+            m.d.sync += self.lp_rest.eq(self.rest)
         with m.If(self.snap):
             m.d.sync += snapped.eq(self.lp)
         with m.If(self.acc_we):

@@ -100,6 +100,19 @@ def test_plan_writes_verilog_and_constraints_on_the_boards_pins(board: str, cloc
     assert "latency" in table and "logic cells" not in table
 
 
+@pytest.mark.parametrize("board, clock, command", [
+    ("icebreaker", "12 MHz", "synth_ice40 -device u -top dvgate"),
+    ("ice40-hx8k-breakout", "12 MHz", "synth_ice40  -top dvgate"),
+    ("ulx3s", "25 MHz", "synth_ecp5  -top dvgate"),
+])
+def test_synthesis_maps_for_the_devices_delays(board: str, clock: str, command: str, tmp_path: Path) -> None:
+    # Yosys' ``help synth_ice40``: without ``-device`` the mapping assumes an HX part's
+    # delays; the UltraPlus part on the iCEBreaker is slower and is named.
+    cfg = load_config(write_config(tmp_path, clock, channels=1))
+    build_config(cfg, board=board, out_dir=tmp_path / "out", plan_only=True)
+    assert command in (tmp_path / "out" / "dvgate.ys").read_text()
+
+
 def test_plan_needs_no_toolchain(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
     without_tools(monkeypatch, tmp_path)
 
