@@ -46,6 +46,8 @@ backlog.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
@@ -58,6 +60,29 @@ RAW, ZERO, UPPER, LOWER = 0, 1, 2, 3
 #: Block RAM, and no read-during-write logic: a channel's words are never read in a cycle
 #: that writes them (see the module docstring).
 _RAM_ATTRS = {"ram_style": "block", "no_rw_check": 1}
+
+
+@dataclass
+class _Read:
+    """A read port of a RAM that the pipeline writes: ``data`` is ``addr``'s word a cycle later."""
+
+    addr: Value
+    data: Value
+
+
+def _read_port(m: Module, mem: memory.Memory) -> _Read:
+    """A synchronous read of ``mem`` built as an asynchronous read and a register.
+
+    The same cycles as ``read_port(transparent_for=())``. Yosys (0.70) reads an
+    Amaranth synchronous port as one that must return the old word when the same cycle
+    writes it, which the iCE40 block RAM cannot, and adds a bypass register and a
+    multiplexer on the read data; a register that it merges into the port itself honours
+    ``no_rw_check`` and needs none.
+    """
+    port = mem.read_port(domain="comb")
+    data = Signal(mem.shape)
+    m.d.sync += data.eq(port.data)
+    return _Read(port.addr, data)
 
 
 def cycle_bits(params: HardwareParams) -> int:
@@ -179,15 +204,15 @@ class SharedOwed(wiring.Component):
         for name in ("step_lo", "step_mid", "step_whole", "anchor", "handed", "owed_lo", "owed_mid",
                      "owed_whole", "counts"):
             m.submodules[name] = getattr(self, name)
-        anchor_rd, anchor_wr = self.anchor.read_port(transparent_for=()), self.anchor.write_port()
-        handed_rd, handed_wr = self.handed.read_port(transparent_for=()), self.handed.write_port()
-        lo_rd, lo_wr = self.owed_lo.read_port(transparent_for=()), self.owed_lo.write_port()
-        mid_rd, mid_wr = self.owed_mid.read_port(transparent_for=()), self.owed_mid.write_port()
-        whole_rd, whole_wr = self.owed_whole.read_port(transparent_for=()), self.owed_whole.write_port()
+        anchor_rd, anchor_wr = _read_port(m, self.anchor), self.anchor.write_port()
+        handed_rd, handed_wr = _read_port(m, self.handed), self.handed.write_port()
+        lo_rd, lo_wr = _read_port(m, self.owed_lo), self.owed_lo.write_port()
+        mid_rd, mid_wr = _read_port(m, self.owed_mid), self.owed_mid.write_port()
+        whole_rd, whole_wr = _read_port(m, self.owed_whole), self.owed_whole.write_port()
         step_lo_rd = self.step_lo.read_port(transparent_for=())
         step_mid_rd = self.step_mid.read_port(transparent_for=())
         step_whole_rd = self.step_whole.read_port(transparent_for=())
-        counts_rd, counts_wr = self.counts.read_port(transparent_for=()), self.counts.write_port()
+        counts_rd, counts_wr = _read_port(m, self.counts), self.counts.write_port()
 
         # Accepted hand-overs wait here for the visit that moves past their strobe.
         loaded = Signal(n)
@@ -239,8 +264,11 @@ class SharedOwed(wiring.Component):
         s1_e     = Signal(cb)
         s1_old   = Signal()
         s1_lvl   = Signal()
+        s1_skip  = Signal()
         m.d.sync += [
             s1_valid.eq(slot < n),
+            # ``pending`` after this cycle's update (which sets another slot's bit only).
+            s1_skip.eq(pending.bit_select(slot, 1) & self.ahead_valid & (self.ahead != 0)),
             s1_slot.eq(slot),
             s1_t.eq(Mux(in_window, view_at, now_end)),
             s1_stb.eq(in_window),
@@ -257,10 +285,16 @@ class SharedOwed(wiring.Component):
         diff_ta = Signal(cb)   # t - a
         diff_ea = Signal(cb)   # e - a
         diff_te = Signal(cb)   # t - e
+        # ``x <= 0`` is ``x - 1 < 0``: the sign of one more sum, not a compare after one
+        # (the differences stay far inside the cycle numbers' range).
+        ea_less = Signal(cb)   # e - a - 1
+        te_less = Signal(cb)   # t - e - 1
         m.d.comb += [
             diff_ta.eq(s1_t - a_abs),
             diff_ea.eq(s1_e - a_abs),
             diff_te.eq(s1_t - s1_e),
+            ea_less.eq(s1_e + ~a_abs),
+            te_less.eq(s1_t + ~s1_e),
             anchor_wr.addr.eq(s1_slot),
             anchor_wr.data.eq(Cat(s1_t, s1_stb)),
             # Read a stage early, so the low chunk's stage starts from registers.
@@ -269,7 +303,7 @@ class SharedOwed(wiring.Component):
         # The anchor's strobe is still ahead and still in view: its hand-over is not decided
         # yet. (A strobe that was in view and no longer is will not come: nothing is handed
         # over at it, and a new strobe may already be in this visit's window.)
-        skip = pending.bit_select(s1_slot, 1)
+        skip = s1_skip
         m.d.comb += anchor_wr.en.eq(s1_valid & ~skip)
         # Cleared once the strobe in view comes (its hand-over is then decided) or is gone.
         with m.If(~self.ahead_valid | (self.ahead == 0)):
@@ -292,8 +326,8 @@ class SharedOwed(wiring.Component):
             r_stb.eq(s1_stb),
             r_at_stb.eq(at_stb),
             # The change is at or before the anchor (or long ago); at or after the target.
-            r_before.eq(s1_old | diff_ea[-1] | (diff_ea == 0)),
-            r_after.eq(~s1_old & (diff_te[-1] | (diff_te == 0))),
+            r_before.eq(s1_old | ea_less[-1]),
+            r_after.eq(~s1_old & te_less[-1]),
             r_lvl.eq(s1_lvl),
             r_d_ta.eq(diff_ta),
             r_d_ea.eq(diff_ea),
@@ -364,7 +398,7 @@ class SharedOwed(wiring.Component):
         s3_slot  = Signal.like(s1_slot)
         s3_code  = Signal(2)
         s3_c1    = Signal()
-        s3_lo_nz = Signal(_groups(l1))
+        s3_lo    = Signal(l1)
         s3_hand  = Signal(nshape)
         s3_zero  = Signal()
         s3_dis   = Signal()
@@ -374,7 +408,7 @@ class SharedOwed(wiring.Component):
             s3_slot.eq(s2_slot),
             s3_code.eq(code),
             s3_c1.eq(sum_lo[l1]),
-            s3_lo_nz.eq(_nonzero_groups(sum_lo[:l1])),
+            s3_lo.eq(sum_lo[:l1]),
             s3_hand.eq(hand_sub),
             s3_zero.eq(s2_zero),
             s3_dis.eq(s2_dis),
@@ -396,7 +430,8 @@ class SharedOwed(wiring.Component):
         s4_slot  = Signal.like(s1_slot)
         s4_code  = Signal(2)
         s4_c2    = Signal()
-        s4_nz    = Signal(_groups(l1) + _groups(frac - l1))
+        s4_lo_nz = Signal(_groups(l1))
+        s4_mid   = Signal(frac - l1)
         s4_step  = Signal.like(step_w)
         s4_zero  = Signal()
         s4_dis   = Signal()
@@ -406,8 +441,10 @@ class SharedOwed(wiring.Component):
             s4_slot.eq(s3_slot),
             s4_code.eq(s3_code),
             s4_c2.eq(sum_mid[frac - l1]),
-            # Which 4-bit groups of the fraction are not zero; ORed a stage later.
-            s4_nz.eq(Cat(s3_lo_nz, _nonzero_groups(sum_mid[:frac - l1]))),
+            # Which 4-bit groups of the fraction are not zero, from registers (the sums end
+            # their cycle late); the rest of the test a stage later.
+            s4_lo_nz.eq(_nonzero_groups(s3_lo)),
+            s4_mid.eq(sum_mid[:frac - l1]),
             s4_step.eq(step_w),
             s4_zero.eq(s3_zero),
             s4_dis.eq(s3_dis),
@@ -436,7 +473,7 @@ class SharedOwed(wiring.Component):
             s5_valid.eq(s4_valid),
             s5_slot.eq(s4_slot),
             s5_hi.eq(hi),
-            s5_nz.eq(s4_nz.any()),
+            s5_nz.eq(s4_lo_nz.any() | s4_mid.any()),
             s5_zero.eq(s4_zero),
             s5_dis.eq(s4_dis),
             s5_stb.eq(s4_stb),
@@ -579,21 +616,41 @@ class SharedOwed(wiring.Component):
         rw = cw + 3
         top_ask = p.clamp if p.scheme == "burst" else 1
         bases = [p.backlog - 2 * r, p.backlog - 2 * r + 1, p.backlog, p.backlog + 1]
-        rooms = [Signal(signed(rw), name=f"room{k}") for k in range(4)]
+        # Each room is kept as ``nroom = -room - 1``, split at the width ``w`` of the
+        # truncated amount: ``low_mag <= room`` is ``low_mag + nroom < 0``, and with
+        # ``c`` the carry out of ``low_mag + nroom[:w]`` that is ``hi + c < 0`` for the
+        # high part ``hi``: ``hi <= -2``, or ``hi == -1`` and no carry. Stage 7 then has
+        # a ``w``-bit carry chain from registers and one level of logic after it.
+        w = len(s6_parts.low_mag)
         top_ok = [Signal(name=f"room_top{k}") for k in range(4)]
-        for room, fits, base in zip(rooms, top_ok, bases, strict=True):
-            m.d.sync += [room.eq(base - b6_total), fits.eq(b6_total <= base - top_ask)]
+        room_lo = [Signal(w, name=f"room_lo{k}") for k in range(4)]
+        room_n2 = [Signal(name=f"room_n2_{k}") for k in range(4)]   # hi <= -2
+        room_n1 = [Signal(name=f"room_n1_{k}") for k in range(4)]   # hi == -1
+        for k, base in enumerate(bases):
+            nroom = Signal(signed(rw), name=f"nroom{k}")
+            hi = nroom[w:].as_signed()
+            m.d.comb += nroom.eq(b6_total - (base + 1))
+            m.d.sync += [
+                top_ok[k].eq(b6_total <= base - top_ask),
+                room_lo[k].eq(nroom[:w]),
+                room_n2[k].eq(hi < -1),
+                room_n1[k].eq(hi == -1),
+            ]
 
         # --- stage 7: the accept bits of the targeted strobe --------------------------------
         # The count asked for is 0, the top one or (burst) the truncated amount, as
-        # ``ask_magnitude`` chooses it.
+        # ``ask_magnitude`` chooses it; which of them, and the bit for the first two, come
+        # from registers, so only the truncated amount's carry is on the way to the emitter.
         parts = s6_parts
         some  = ~s6_zero
         bits  = []
-        for room, fits in zip(rooms, top_ok, strict=True):
-            zero_fits = ~room[-1]
+        for k in range(4):
+            fits, zero_fits = top_ok[k], room_n2[k] | room_n1[k]   # room >= 0: nroom < 0
             if p.scheme == "burst":
-                bits.append(Mux(some, Mux(parts.big_p | parts.big_n, fits, parts.low_mag <= room), zero_fits))
+                compare = some & ~parts.big_p & ~parts.big_n
+                carry = (parts.low_mag + room_lo[k])[w]
+                base_bit = Mux(compare, room_n2[k], Mux(some, fits, zero_fits))
+                bits.append(base_bit | (compare & room_n1[k] & ~carry))
             elif p.scheme == "binary":
                 bits.append(fits)
             else:

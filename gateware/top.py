@@ -85,10 +85,10 @@ def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal,
         (saturated, top.flags.saturated, top.saturations),
     ]
     for event, flag, counter in events:
+        # The count saturates by adding 0 at the top, not by a second condition on the
+        # event: the event alone enables the register (it comes late on a strobe's cycle).
         with m.If(event):
-            m.d.sync += flag.eq(1)
-            with m.If(counter != _EVENT_MAX):
-                m.d.sync += counter.eq(counter + 1)
+            m.d.sync += [flag.eq(1), counter.eq(counter + (counter != _EVENT_MAX))]
     return clipped
 
 
