@@ -43,10 +43,11 @@ def ask_parts_layout(params: HardwareParams) -> data.StructLayout:
 
     ``neg``: the owed amount is negative; ``up``: burst, negative with a fraction
     (truncation toward zero adds one); ``big_p``/``big_n``: burst, past +/- the clamp,
-    ternary, at least one / at most minus one; ``low_n``: burst, the truncated whole part.
+    ternary, at least one / at most minus one; ``low_n``: burst, the truncated whole part;
+    ``low_mag``: its magnitude; ``low_zero``: burst, it is 0.
     """
     return data.StructLayout({"neg": 1, "up": 1, "big_p": 1, "big_n": 1, "low_n": net_shape(params),
-                              "low_mag": mag_shape(params)})
+                              "low_mag": mag_shape(params), "low_zero": 1})
 
 
 def ask_parts(m: Module, params: HardwareParams, whole: Value, frac_nz: Value) -> data.View:
@@ -82,6 +83,8 @@ def ask_parts(m: Module, params: HardwareParams, whole: Value, frac_nz: Value) -
             parts.low_n.eq(whole[:net_shape(params).width] + up),
             # |whole + up| (for a negative amount ~whole + 1 - up), in the clamp's width.
             parts.low_mag.eq(Mux(neg, mag_n, whole)[:cb] + (neg & ~up)),
+            # Truncated to 0: the whole part is 0, or -1 with a fraction.
+            parts.low_zero.eq((whole == 0) | ((whole == -1) & frac_nz)),
             # whole > clamp
             parts.big_p.eq(~neg & (whole[cb:].any() | (whole[:cb] > clamp))),
             # whole < -clamp - up, that is ~whole >= clamp + up
@@ -114,27 +117,24 @@ def ask_select(m: Module, params: HardwareParams, parts: data.View, armed: Value
     return ask_n, ask_clmp
 
 
-def ask_magnitude(m: Module, params: HardwareParams, parts: data.View, armed: Value) -> tuple[Signal, Signal]:
-    """The ask of :func:`ask_select` as a sign and a magnitude (:func:`mag_shape`).
+def ask_lines(m: Module, params: HardwareParams, parts: data.View, armed: Value) -> tuple[Signal, Signal]:
+    """Whether the ask of :func:`ask_select` has pulses on the positive line, on the negative.
 
-    Returns
-    -------
-    tuple of Signal
-        ``(neg, mag)``: the count is ``-mag`` when ``neg``, else ``mag`` (``neg`` is
-        meaningless when ``mag`` is 0).
+    The sign of a count that is not 0, from the parts alone (a few levels of logic, no
+    count): for the burst scheme ``low_zero`` says whether the truncated amount is 0.
     """
+    pos = Signal()
     neg = Signal()
-    mag = Signal(mag_shape(params))
     if params.scheme == "burst":
         m.d.comb += [
-            neg.eq(parts.neg),
-            mag.eq(Mux(~armed, 0, Mux(parts.big_p | parts.big_n, params.clamp, parts.low_mag))),
+            pos.eq(armed & ~parts.neg & (parts.big_p | ~parts.low_zero)),
+            neg.eq(armed & parts.neg & (parts.big_n | ~parts.low_zero)),
         ]
     elif params.scheme == "binary":
-        m.d.comb += [neg.eq(armed & parts.neg), mag.eq(1)]
+        m.d.comb += [neg.eq(armed & parts.neg), pos.eq(~(armed & parts.neg))]
     else:
-        m.d.comb += [neg.eq(parts.big_n), mag.eq(armed & (parts.big_p | parts.big_n))]
-    return neg, mag
+        m.d.comb += [pos.eq(armed & parts.big_p & ~parts.big_n), neg.eq(armed & parts.big_n)]
+    return pos, neg
 
 
 def ask_logic(m: Module, params: HardwareParams, whole: Value, frac_nz: Value,

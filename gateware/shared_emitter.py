@@ -116,9 +116,12 @@ class SharedEmitter(wiring.Component):
         acc   = Signal(4)
 
         # Accept: the pipeline's bit for the rest pulses in force and the pulses since.
+        # ``load`` is kept as one net: ``take`` then reaches one LUT per emitter.
+        load = Signal(attrs={"keep": 1})
         m.d.comb += [
             self.accept.eq(Mux(self.rest, Mux(since, acc[1], acc[0]), Mux(since, acc[3], acc[2]))),
-            self.load.eq(self.take & self.accept),
+            load.eq(self.take & self.accept),
+            self.load.eq(load),
         ]
 
         # What each line has waiting, with this cycle's hand-over loaded (``with_t``) or

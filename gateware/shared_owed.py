@@ -52,7 +52,7 @@ from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.accumulator import ask_magnitude, ask_parts, ask_select, net_shape
+from dvgate.gateware.accumulator import ask_lines, ask_parts, ask_select, net_shape
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -126,9 +126,10 @@ class SharedOwed(wiring.Component):
 
     Attributes
     ----------
-    ahead_valid, ahead : in
+    ahead_valid, ahead, in_view : in
         From the strobe detector: a strobe comes ``ahead`` cycles from now if the
-        synchronized strobe stays active.
+        synchronized strobe stays active; a strobe is in view and has not come
+        (``ahead_valid`` and ``ahead != 0``, as a register).
     armed_ahead : Signal(1), in
         ``armed`` of cycle ``k + arm_lead`` (the arm input, delayed to that point).
     load : Signal(n), in
@@ -151,6 +152,7 @@ class SharedOwed(wiring.Component):
         super().__init__({
             "ahead_valid": In(1),
             "ahead": In(range(max(2, params.min_width_cyc))),
+            "in_view": In(1),
             "armed_ahead": In(1),
             "load": In(params.n),
             "hand_pos": Out(params.n),
@@ -268,7 +270,7 @@ class SharedOwed(wiring.Component):
         m.d.sync += [
             s1_valid.eq(slot < n),
             # ``pending`` after this cycle's update (which sets another slot's bit only).
-            s1_skip.eq(pending.bit_select(slot, 1) & self.ahead_valid & (self.ahead != 0)),
+            s1_skip.eq(pending.bit_select(slot, 1) & self.in_view),
             s1_slot.eq(slot),
             s1_t.eq(Mux(in_window, view_at, now_end)),
             s1_stb.eq(in_window),
@@ -306,7 +308,7 @@ class SharedOwed(wiring.Component):
         skip = s1_skip
         m.d.comb += anchor_wr.en.eq(s1_valid & ~skip)
         # Cleared once the strobe in view comes (its hand-over is then decided) or is gone.
-        with m.If(~self.ahead_valid | (self.ahead == 0)):
+        with m.If(~self.in_view):
             m.d.sync += pending.eq(0)
         with m.Elif(s1_valid & ~skip & s1_stb):
             m.d.sync += pending.eq(pending | (1 << s1_slot))
@@ -507,7 +509,7 @@ class SharedOwed(wiring.Component):
 
         # --- stage 7: the hand-over ---------------------------------------------------------
         ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
-        ask_neg, ask_mag = ask_magnitude(m, p, s6_parts, ~s6_zero)
+        ask_pos, ask_neg = ask_lines(m, p, s6_parts, ~s6_zero)
         m.d.comb += [
             handed_wr.addr.eq(s6_slot),
             handed_wr.data.eq(Cat(s6_code, ask_n)),
@@ -515,8 +517,8 @@ class SharedOwed(wiring.Component):
         ]
         for i in range(n):
             with m.If(s6_valid & (s6_slot == i) & s6_stb):
-                m.d.sync += [self.hand_pos[i].eq(~ask_neg & (ask_mag != 0)),
-                             self.hand_neg[i].eq(ask_neg & (ask_mag != 0)),
+                m.d.sync += [self.hand_pos[i].eq(ask_pos),
+                             self.hand_neg[i].eq(ask_neg),
                              self.hand_clmp[i].eq(ask_clmp)]
 
         self._books(m, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
@@ -639,7 +641,7 @@ class SharedOwed(wiring.Component):
 
         # --- stage 7: the accept bits of the targeted strobe --------------------------------
         # The count asked for is 0, the top one or (burst) the truncated amount, as
-        # ``ask_magnitude`` chooses it; which of them, and the bit for the first two, come
+        # ``ask_select`` chooses it; which of them, and the bit for the first two, come
         # from registers, so only the truncated amount's carry is on the way to the emitter.
         parts = s6_parts
         some  = ~s6_zero

@@ -83,11 +83,16 @@ class SharedEmulator(wiring.Component):
             self.host_absent.eq(det.host_absent),
             owed.ahead_valid.eq(det.ahead_valid),
             owed.ahead.eq(det.ahead),
+            owed.in_view.eq(det.in_view),
             owed.armed_ahead.eq(arm_line[0]),
         ]
 
         # ``stb & armed & ~ignoring``, as a register: the emitters' logic then starts from flip-flops.
         m.d.sync += take.eq(det.stb_next & armed_next & ~ignoring_next)
+        # The same register again for the status logic, kept apart so that neither copy
+        # drives more than the emitters' or the status's logic (a strobe's cycle is short).
+        take_st = Signal(attrs={"keep": 1})
+        m.d.sync += take_st.eq(det.stb_next & armed_next & ~ignoring_next)
 
         for i, (name, em, fs) in enumerate(zip(p.names, self.emitters, self.fault_stages, strict=True)):
             m.submodules[f"{name}_emit"] = em
@@ -120,11 +125,11 @@ class SharedEmulator(wiring.Component):
                 fs.armed_next.eq(armed_next),
                 pos_port.eq(fs.pos ^ p.active_low),
                 neg_port.eq(fs.neg ^ p.active_low),
-                overrun[i].eq(take & em.busy),
+                overrun[i].eq(take_st & em.busy),
                 clamped[i].eq(em.load & owed.hand_clmp[i]),
-                deferred[i].eq(take & ~em.accept),
+                deferred[i].eq(take_st & ~em.accept),
             ]
-        status_logic(m, self, take, overrun, clamped, deferred, owed.clip)
+        status_logic(m, self, take_st, overrun, clamped, deferred, owed.clip)
         return m
 
 

@@ -43,6 +43,9 @@ class StrobeDetector(wiring.Component):
     ahead : Signal(range(min_width_cyc)), out
         With ``ahead_valid``: ``stb`` comes ``ahead`` cycles from now if the strobe stays
         active (0: this cycle). Lets a shared datapath prepare every channel in turn.
+    in_view : Signal(1), out
+        ``ahead_valid`` and not ``stb``: a strobe is in view and still to come (a
+        register, so logic that waits on it starts from a flip-flop).
     strobes : Signal(32), out
         Strobes seen since reset; wraps.
     period : Signal(32), out
@@ -65,6 +68,7 @@ class StrobeDetector(wiring.Component):
             "stb_next": Out(1),
             "ahead_valid": Out(1),
             "ahead": Out(range(max(2, min_width_cyc))),
+            "in_view": Out(1),
             "strobes": Out(STROBE_COUNT_BITS),
             "period": Out(STROBE_COUNT_BITS),
             "host_absent": Out(1),
@@ -97,6 +101,8 @@ class StrobeDetector(wiring.Component):
         # on consecutive cycles (run passes M - 1 once per active stretch).
         m.d.comb += self.stb_next.eq((s1 ^ idle) & Mux(active, Mux(run != width, run + 1, run) == width - 1,
                                                       width == 1))
+        # Next cycle's run is not width - 1 (the strobe's cycle) or width (after it).
+        m.d.sync += self.in_view.eq((s1 ^ idle) & Mux(active, run + 2 < width, width > 1))
 
         # One saturating incrementer serves both the timer and the period.
         m.d.comb += since_inc.eq(Mux(since == _COUNT_MAX, since, since + 1))
