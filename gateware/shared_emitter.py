@@ -124,12 +124,12 @@ class SharedEmitter(wiring.Component):
             self.load.eq(load),
         ]
 
-        # What each line has waiting, with this cycle's hand-over loaded (``with_t``) or
-        # not: a hand-over loaded earlier and not folded in yet adds its rest pulses and
-        # its line, a load now its own instead. Then the line a start picks in each case,
-        # the pulse on the line held high or started (``line_t``, ``line_n``), and
-        # whether a pulse starts: the load, which waits for ``take`` from afar and the
-        # accept bit, picks one of the two as late as it can.
+        # ``has[line]``: whether the line has a pulse waiting, with this cycle's hand-over
+        # loaded and without (a hand-over loaded earlier and not folded in yet adds its
+        # rest pulses and its line, a load now its own instead). Then, for each case, the
+        # line a start takes (``took_t``, ``took_n``), the lines' next values and whether
+        # a pulse starts: ``load``, which waits for ``take`` from afar and the accept bit,
+        # picks between the cases as late as it can.
         rest_now = self.rest & (r > 0)
         rest_old = self.lp_rest & (r > 0)
         has = {}
