@@ -102,3 +102,23 @@ def test_stb_next_is_next_cycles_stb(min_width, edge_rising):
     assert [r["stb_next"] for r in rows[:-1]] == [r["stb"] for r in rows[1:]]
     # two strobes never on consecutive cycles: the accumulator relies on it
     assert not any(a["stb"] and b["stb"] for a, b in zip(rows, rows[1:], strict=False))
+
+
+@pytest.mark.parametrize("min_width", [1, 2, 3, 24])
+@pytest.mark.parametrize("edge_rising", [True, False])
+def test_in_view_is_a_strobe_still_to_come(min_width, edge_rising):
+    # Its definition (the port's docstring): ``ahead_valid`` and not ``stb``, every cycle,
+    # with runs long and short around the filter's length so that every value of ``ahead``
+    # occurs, and runs that end before their strobe.
+    rng = random.Random(100 + min_width)  # fixed seed: the same pin pattern every run
+    inputs = []
+    level = 0
+    while len(inputs) < 1500:
+        stretch = rng.randint(1, 2 * min_width + 2)
+        inputs += [{"pin": level if edge_rising else 1 - level}] * stretch
+        level ^= 1
+    dut = StrobeDetector(edge_rising=edge_rising, min_width_cyc=min_width, absence_cyc=50)
+    rows = run_cycles(dut, inputs, ("stb", "ahead_valid", "ahead", "in_view"))
+    assert sum(r["stb"] for r in rows) > 10
+    assert {r["ahead"] for r in rows if r["ahead_valid"]} == set(range(min_width))
+    assert [r["in_view"] for r in rows] == [int(r["ahead_valid"] and not r["stb"]) for r in rows]
