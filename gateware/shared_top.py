@@ -129,7 +129,7 @@ class SharedEmulator(wiring.Component):
                 clamped[i].eq(em.load & owed.hand_clmp[i]),
                 deferred[i].eq(take_st & ~em.accept),
             ]
-        status_logic(m, self, take_st, overrun, clamped, deferred, owed.clip)
+        status_logic(m, self, take_st, overrun, clamped, deferred, owed.clip, late_events=True)
         return m
 
 

@@ -35,7 +35,7 @@ class StatusFlags(data.Struct):
 
 
 def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal, clamped: Signal,
-                 deferred: Signal, sat_evt: Signal) -> Signal:
+                 deferred: Signal, sat_evt: Signal, *, late_events: bool = False) -> Signal:
     """The sticky flags and event counters of a top, added to ``m``'s ``sync`` domain.
 
     The contract (rules: ``docs/timing.md``, "Status"):
@@ -50,7 +50,11 @@ def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal,
       any mark set counts one saturation and sets ``flags.saturated``; so a mark made in
       a strobe's own cycle belongs to the next taken strobe, and marks outlast disarming
       and strobes that are not taken.
-    - Every flag and counter is a register: an event at cycle ``k`` shows from ``k + 1``.
+    - An event at cycle ``k`` shows from ``k + 1``. Every flag and counter is a
+      register; with ``late_events`` it is a register plus the events of the cycle before,
+      which come from registers too (the same values, cycle for cycle). The shared
+      datapath's top uses that: its events come late in a strobe's cycle from every
+      emitter, and their OR then waits for the next one.
 
     Parameters
     ----------
@@ -67,6 +71,9 @@ def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal,
         hand-over was clamped; it was deferred.
     sat_evt : Signal(n)
         Per channel: this cycle's owed update saturates.
+    late_events : bool
+        Register the events as they come (one bit per channel) and count them a cycle
+        later; the ports then add the registered events to the counts.
 
     Returns
     -------
@@ -84,7 +91,18 @@ def status_logic(m: Module, top: wiring.Component, take: Value, overrun: Signal,
         (deferred.any(), top.flags.deferred, top.deferrals),
         (saturated, top.flags.saturated, top.saturations),
     ]
-    for event, flag, counter in events:
+    vectors = {"overrun": overrun, "clamped": clamped, "deferred": deferred, "saturated": saturated}
+    for (event, flag, counter), name in zip(events, vectors, strict=True):
+        if late_events:
+            # Last cycle's events (per channel, before any OR), and the counts before them.
+            vector = vectors[name]
+            held = Signal(len(vector), name=f"{name}_event")
+            counted = Signal.like(counter, name=f"{name}_count")
+            stuck = Signal(name=f"{name}_flag")
+            m.d.sync += held.eq(vector)
+            event = held.any()
+            m.d.comb += [flag.eq(stuck | event), counter.eq(counted + (event & (counted != _EVENT_MAX)))]
+            flag, counter = stuck, counted
         # The count saturates by adding 0 at the top, not by a second condition on the
         # event: the event alone enables the register (it comes late on a strobe's cycle).
         with m.If(event):
