@@ -299,8 +299,11 @@ class SharedOwed(wiring.Component):
             te_less.eq(s1_t + ~s1_e),
             anchor_wr.addr.eq(s1_slot),
             anchor_wr.data.eq(Cat(s1_t, s1_stb)),
-            # Read a stage early, so the low chunk's stage starts from registers.
+            # Read a stage early, so the low chunk's stage starts from registers; the owed
+            # chunks two stages before their adds, so each add starts from a register that
+            # holds the stored chunk as its code reads it.
             handed_rd.addr.eq(s1_slot),
+            lo_rd.addr.eq(s1_slot),
         ]
         # The anchor's strobe is still ahead and still in view: its hand-over is not decided
         # yet. (A strobe that was in view and no longer is will not come: nothing is handed
@@ -351,7 +354,7 @@ class SharedOwed(wiring.Component):
             zero.eq(dis_all | fall_in),
             d_eff.eq(Mux(rise_in, r_d_te, Mux(fall_in, r_d_ea, r_d_ta))),
             step_lo_rd.addr.eq(Cat(d_eff, r_slot)),
-            lo_rd.addr.eq(r_slot),
+            mid_rd.addr.eq(r_slot),
         ]
         use_hand = Signal()
         m.d.comb += use_hand.eq(loaded.bit_select(r_slot, 1) & r_at_stb & ~rise_in)
@@ -369,13 +372,17 @@ class SharedOwed(wiring.Component):
         s2_zero  = Signal()
         s2_dis   = Signal()
         s2_stb   = Signal()
+        s2_lo    = Signal(l1)     # the stored low chunk as the code reads it
+        code_in  = Signal(2)
+        # Arming inside the step restarts the owed amount from 0.
+        m.d.comb += code_in.eq(Mux(rise_in, ZERO, handed_rd.data[:2]))
         m.d.sync += [
+            s2_lo.eq(_read_frac(code_in, lo_rd.data)),
             s2_valid.eq(r_valid),
             s2_slot.eq(r_slot),
             s2_d.eq(d_eff),
             s2_hand.eq(use_hand),
-            # Arming inside the step restarts the owed amount from 0.
-            s2_code.eq(Mux(rise_in, ZERO, handed_rd.data[:2])),
+            s2_code.eq(code_in),
             s2_copy.eq(handed_rd.data[2:]),
             s2_zero.eq(zero),
             s2_dis.eq(dis_all),
@@ -383,18 +390,17 @@ class SharedOwed(wiring.Component):
         ]
 
         # --- stage 3: low chunk -------------------------------------------------------------
-        code        = s2_code
         sum_lo      = Signal(l1 + 1)
         hand_sub    = Signal(nshape)
         m.d.comb += [
-            sum_lo.eq(_read_frac(code, lo_rd.data) + step_lo_rd.data),
+            sum_lo.eq(s2_lo + step_lo_rd.data),
             hand_sub.eq(Mux(s2_hand, s2_copy, 0)),
             lo_wr.addr.eq(s2_slot),
             lo_wr.data.eq(sum_lo[:l1]),
             lo_wr.en.eq(s2_valid),
             step_mid_rd.addr.eq(Cat(s2_d, s2_slot)),
             step_whole_rd.addr.eq(Cat(s2_d, s2_slot)),
-            mid_rd.addr.eq(s2_slot),
+            whole_rd.addr.eq(s2_slot),
         ]
         s3_valid = Signal()
         s3_slot  = Signal.like(s1_slot)
@@ -405,10 +411,12 @@ class SharedOwed(wiring.Component):
         s3_zero  = Signal()
         s3_dis   = Signal()
         s3_stb   = Signal()
+        s3_mid   = Signal(frac - l1)   # the stored middle chunk as the code reads it
         m.d.sync += [
+            s3_mid.eq(_read_frac(s2_code, mid_rd.data)),
             s3_valid.eq(s2_valid),
             s3_slot.eq(s2_slot),
-            s3_code.eq(code),
+            s3_code.eq(s2_code),
             s3_c1.eq(sum_lo[l1]),
             s3_lo.eq(sum_lo[:l1]),
             s3_hand.eq(hand_sub),
@@ -421,16 +429,15 @@ class SharedOwed(wiring.Component):
         sum_mid = Signal(frac - l1 + 1)
         step_w  = Signal(signed(d_bits + 3 + nshape.width))
         m.d.comb += [
-            sum_mid.eq(_read_frac(s3_code, mid_rd.data) + step_mid_rd.data + s3_c1),
+            sum_mid.eq(s3_mid + step_mid_rd.data + s3_c1),
             step_w.eq(step_whole_rd.data.as_signed() - s3_hand),
             mid_wr.addr.eq(s3_slot),
             mid_wr.data.eq(sum_mid[:frac - l1]),
             mid_wr.en.eq(s3_valid),
-            whole_rd.addr.eq(s3_slot),
         ]
         s4_valid = Signal()
         s4_slot  = Signal.like(s1_slot)
-        s4_code  = Signal(2)
+        s4_whole = Signal(signed(p.owed_bits))   # the stored whole chunk as the code reads it
         s4_c2    = Signal()
         s4_lo_nz = Signal(_groups(l1))
         s4_mid   = Signal(frac - l1)
@@ -441,7 +448,7 @@ class SharedOwed(wiring.Component):
         m.d.sync += [
             s4_valid.eq(s3_valid),
             s4_slot.eq(s3_slot),
-            s4_code.eq(s3_code),
+            s4_whole.eq(_read_whole(s3_code, whole_rd.data, p.owed_bits)),
             s4_c2.eq(sum_mid[frac - l1]),
             # Which 4-bit groups of the fraction are not zero, from registers (the sums end
             # their cycle late); the rest of the test a stage later.
@@ -455,11 +462,9 @@ class SharedOwed(wiring.Component):
 
         # --- stage 5: whole part --------------------------------------------------------------
         whole_w = p.owed_bits + 2
-        stored  = Signal(signed(p.owed_bits))
         hi      = Signal(signed(whole_w))
         m.d.comb += [
-            stored.eq(_read_whole(s4_code, whole_rd.data, p.owed_bits)),
-            hi.eq(stored + s4_step + s4_c2),
+            hi.eq(s4_whole + s4_step + s4_c2),
             whole_wr.addr.eq(s4_slot),
             whole_wr.data.eq(hi[:p.owed_bits]),
             whole_wr.en.eq(s4_valid),
