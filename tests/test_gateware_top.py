@@ -1,6 +1,7 @@
 # amaranth: UnusedElaboratable=no
 """The status logic both tops share, against docs/timing.md ("Status")."""
 
+import pytest
 from amaranth.hdl import Module, Signal
 from amaranth.lib import wiring
 from amaranth.lib.wiring import In, Out
@@ -14,6 +15,10 @@ TOP = (1 << 16) - 1
 
 class StatusHarness(wiring.Component):
     """``status_logic`` of two channels, its inputs as ports."""
+
+    def __init__(self, late_events: bool) -> None:
+        self._late = late_events
+        super().__init__()
 
     take: In(1)
     overrun: In(2)
@@ -33,19 +38,21 @@ class StatusHarness(wiring.Component):
         m.d.comb += [overrun.eq(self.overrun & self.take.replicate(2)),
                      clamped.eq(self.clamped & self.take.replicate(2)),
                      deferred.eq(self.deferred & self.take.replicate(2))]
-        status_logic(m, self, self.take, overrun, clamped, deferred, self.sat_evt)
+        status_logic(m, self, self.take, overrun, clamped, deferred, self.sat_evt, late_events=self._late)
         return m
 
 
-def test_counters_count_events_and_stop_at_the_top():
+@pytest.mark.parametrize("late_events", [False, True])
+def test_counters_count_events_and_stop_at_the_top(late_events: bool):
     # An overrun on every cycle for longer than the counter's range; one deferral and a
-    # saturation mark taken by a later strobe; no clamp.
+    # saturation mark taken by a later strobe; no clamp. Counting the events a cycle
+    # later (the shared top) shows the same values on every cycle.
     n = TOP + 5
     inputs = [{"take": 1, "overrun": 0b10}] * n
     inputs[3] = {"take": 1, "overrun": 0b10, "deferred": 0b01}
     inputs[4] = {"take": 0, "overrun": 0b10, "deferred": 0, "sat_evt": 0b01}
     inputs[5] = {"take": 1, "overrun": 0b10, "sat_evt": 0}
-    rows = run_cycles(StatusHarness(), inputs, ("overruns", "deferrals", "clamps", "saturations",
+    rows = run_cycles(StatusHarness(late_events), inputs, ("overruns", "deferrals", "clamps", "saturations",
                                                 "flags.overrun", "flags.clamped", "flags.deferred",
                                                 "flags.saturated"))
     # Every flag and counter is a register: an event at cycle k shows from k + 1.
