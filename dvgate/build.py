@@ -131,6 +131,8 @@ class BuildResult:
         Channels built.
     serial : str
         The host link as built: its pins and rate, or why there is none.
+    advice : str
+        More to try when the design misses its clock or does not fit (see :func:`advice`).
     resources : Resources or None
         The place-and-route figures; None for a plan.
     bitstream : Path or None
@@ -145,6 +147,7 @@ class BuildResult:
     latency_cyc: int
     channels: int
     serial: str = ""
+    advice: str = ""
     resources: Resources | None = None
     bitstream: Path | None = None
 
@@ -167,8 +170,8 @@ class BuildResult:
             return None
         return (f"timing fails: the design reaches {res.fmax_hz / 1e6:.2f} MHz, the config asks "
                 f"{res.constraint_hz / 1e6:.6g} MHz; lower the clock (cycle counts follow it), use fewer "
-                "channels or narrower rate fields, or a faster device; the bitstream was written but "
-                "must not be used")
+                f"channels or narrower rate fields, or a faster device{self.advice}; the bitstream was "
+                "written but must not be used")
 
     def table(self) -> str:
         """The report as aligned text lines."""
@@ -193,6 +196,20 @@ class BuildResult:
                                 "first output edge)"))
         width = max(len(key) for key, _ in rows)
         return "\n".join(f"{key:<{width}}  {value}" for key, value in rows)
+
+
+def advice(cfg: Config) -> str:
+    """The shared datapath, as more to try, when the config could use it and does not.
+
+    Returns
+    -------
+    str
+        Text that continues a list of things to try (starting with ``"; or "``), or "".
+    """
+    if cfg.hw.datapath == "shared" or cfg.model.link:
+        return ""
+    return ('; or, with constant rates, one datapath for all channels: [rate] datapath = "shared" '
+            '(docs/timing.md, "The shared datapath")')
 
 
 def _serial(top: BoardTop, pin_map: PinMap, cfg: Config) -> str:
@@ -301,7 +318,8 @@ def build(cfg: Config, pin_map: PinMap, out_dir: str | Path, *, plan_only: bool 
         raise UserError(f"-o {out}: cannot write the build there: {error}") from None
     files = [out / name for name in sorted(plan.files)]
     result = BuildResult(pin_map=pin_map, out_dir=out, files=files, clock_hz=cfg.clock_hz, pll=pll,
-                         latency_cyc=cfg.hw.latency_cyc, channels=cfg.hw.n, serial=_serial(top, pin_map, cfg))
+                         latency_cyc=cfg.hw.latency_cyc, channels=cfg.hw.n, serial=_serial(top, pin_map, cfg),
+                         advice=advice(cfg))
     if plan_only:
         return result
 
@@ -309,7 +327,7 @@ def build(cfg: Config, pin_map: PinMap, out_dir: str | Path, *, plan_only: bool 
     env = {**os.environ, **tools}
     run = subprocess.run(["sh", f"build_{NAME}.sh"], cwd=out, env=env, capture_output=True, text=True)
     if run.returncode != 0:
-        _raise_if_too_big(out, pin_map)
+        _raise_if_too_big(out, pin_map, advice(cfg))
         raise UserError(f"the toolchain failed (status {run.returncode}) in {out}:\n{_tail(run, out)}")
     bitstream = out / f"{NAME}{_BITSTREAM_SUFFIX[pin_map.family]}"
     result.bitstream = bitstream
@@ -341,7 +359,7 @@ def build_config(cfg: Config, *, board: str | None = None, pins: str | Path | No
     return build(cfg, pin_map, out, plan_only=plan_only, seed=settings.seed)
 
 
-def _raise_if_too_big(out: Path, pin_map: PinMap) -> None:
+def _raise_if_too_big(out: Path, pin_map: PinMap, more: str = "") -> None:
     """Turn nextpnr's "not enough cells" failure into :class:`DoesNotFit`."""
     log = out / f"{NAME}.tim"
     if not log.is_file():
@@ -352,7 +370,7 @@ def _raise_if_too_big(out: Path, pin_map: PinMap) -> None:
         if int(used) > int(available):
             raise DoesNotFit(f"the design does not fit {pin_map.device}: it needs {used} logic cells "
                              f"({bel}), the device has {available}; use fewer channels, narrower rate "
-                             "fields or a bigger device", int(used), int(available))
+                             f"fields or a bigger device{more}", int(used), int(available))
 
 
 def _tail(run: subprocess.CompletedProcess[str], out: Path, lines: int = 25) -> str:

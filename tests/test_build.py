@@ -14,7 +14,7 @@ from amaranth.build import Pins
 
 import dvgate.build
 from dvgate.boards import load_pin_map
-from dvgate.build import BuildResult, Resources, build_config, find_tools, read_resources
+from dvgate.build import BuildResult, Resources, advice, build_config, find_tools, read_resources
 from dvgate.cli import main
 from dvgate.config import load_config
 from dvgate.errors import UserError
@@ -111,6 +111,17 @@ def test_synthesis_maps_for_the_devices_delays(board: str, clock: str, command: 
     cfg = load_config(write_config(tmp_path, clock, channels=1))
     build_config(cfg, board=board, out_dir=tmp_path / "out", plan_only=True)
     assert command in (tmp_path / "out" / "dvgate.ys").read_text()
+
+
+def test_advice_points_at_the_shared_datapath_only_where_it_applies(tmp_path: Path) -> None:
+    per_channel = load_config(write_config(tmp_path))
+    assert '[rate] datapath = "shared"' in advice(per_channel)
+    # A host link writes rates: the shared datapath cannot serve it.
+    assert advice(load_config(write_config(tmp_path, extra="\n[link]\nbaud = 115200\n"))) == ""
+    shared = (SMALL.format(clock="48 MHz", channels=2).replace('"2 cycles"', '"24 cycles"')
+              + 'datapath = "shared"\n')
+    (tmp_path / "shared.toml").write_text(shared)
+    assert advice(load_config(tmp_path / "shared.toml")) == ""
 
 
 def test_plan_needs_no_toolchain(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
@@ -267,6 +278,8 @@ def test_hx8k_timing_failure_exits_1(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert status == 1
     assert "FAILS TIMING" in captured.out
     assert "timing fails: the design reaches" in captured.err and "264 MHz" in captured.err
+    # A per-channel design without a link is pointed at the shared datapath.
+    assert '[rate] datapath = "shared"' in captured.err
     # The HX8K has 7680 logic cells (iCE40 LP/HX data sheet, from memory).
     assert re.search(r"logic cells\s+\d+ / 7680 ", captured.out)
 
