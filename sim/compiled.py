@@ -231,7 +231,9 @@ def _registers(params: HardwareParams) -> tuple[set[str], set[str], set[str]]:
     # saturation marks (``clipped``) change only on a saturating update or a taken
     # strobe, and a quiet span has neither.
     holding = {"flags", "overruns", "clamps", "deferrals", "saturations", "ignored", "detector.period",
-               "detector.strobes", "clipped"}
+               "detector.strobes", "clipped",
+               # "A strobe in view" (for the shared datapath): 0 while the detector rests.
+               "detector.in_view"}
     # Read or advanced when present (the fault stage and the ignore window).
     optional = {"ignore_left", "ignore_open"}
     for i, name in enumerate(params.names):
