@@ -16,8 +16,9 @@ from amaranth.lib.wiring import In, Out
 from dvgate.gateware.faults import FaultLayout
 from dvgate.gateware.frame_rx import REASON_BITS, FrameDecoder
 from dvgate.gateware.frame_tx import FrameEncoder
+from dvgate.gateware.ram import NO_RW_CHECK, read_data, sync_read
 from dvgate.gateware.rates import addr_bits
-from dvgate.gateware.segments import NO_RW_CHECK, fifo_lanes, read_data
+from dvgate.gateware.segments import fifo_lanes
 from dvgate.gateware.uart_rx import RxByte
 from dvgate.linkspec import (
     COUNT_BITS,
@@ -243,7 +244,7 @@ class HostLink(wiring.Component):
         # type), read all the time.
         m.submodules.args = args = self._args
         a_wr     = args.write_port(granularity=8)
-        a_rd     = args.read_port(transparent_for=())
+        a_rd     = sync_read(m, args)
         arg      = read_data(m, a_rd, a_wr)
         f_chan   = arg[0:8]
         f_set    = arg[8:16]
@@ -372,10 +373,10 @@ class HostLink(wiring.Component):
         m.submodules.counters = counters = self.counters
         m.submodules.frozen = frozen = self._frozen
         c_wr   = counters.write_port()
-        c_upd  = counters.read_port(transparent_for=())
-        c_rd   = counters.read_port(transparent_for=())
+        c_upd  = sync_read(m, counters)
+        c_rd   = sync_read(m, counters)
         f_wr   = frozen.write_port()
-        f_rd   = frozen.read_port(transparent_for=())
+        f_rd   = sync_read(m, frozen)
 
         upd    = Signal()
         word   = Signal(range(COUNTER_WORDS))

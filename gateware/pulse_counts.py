@@ -10,7 +10,7 @@ from amaranth.hdl import Module, Mux, Signal
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
-from dvgate.gateware.segments import NO_RW_CHECK, read_data
+from dvgate.gateware.ram import NO_RW_CHECK, read_data, sync_read
 
 #: Width of the per-line pulse counters (wrap).
 PULSE_COUNT_BITS = 32
@@ -89,8 +89,8 @@ class PulseCounters(wiring.Component):
         slots = 2 * n
         m.submodules.totals = totals = self.totals
         t_wr = totals.write_port()
-        t_rd = totals.read_port(transparent_for=())
-        a_rd = totals.read_port(transparent_for=())
+        t_rd = sync_read(m, totals)
+        a_rd = sync_read(m, totals)
 
         before = Signal(slots)
         rise   = Signal(slots)

@@ -4,37 +4,15 @@ Rules: ``docs/link.md``, section "Playback". The pure-Python twin is
 ``dvgate.sim.link_model.PlayerModel``; tests hold the two equal cycle by cycle.
 """
 
-from amaranth.hdl import Module, Mux, Signal, Value, signed
+from amaranth.hdl import Module, Mux, Signal, signed
 from amaranth.lib import enum, memory, wiring
 from amaranth.lib.wiring import In, Out
 
+from dvgate.gateware.ram import NO_RW_CHECK, read_data, sync_read
 from dvgate.gateware.rates import addr_bits
 from dvgate.linkspec import COUNT_BITS, DURATION_BITS, LinkParams, PlayState
 
 _COUNT_MAX = (1 << COUNT_BITS) - 1
-
-#: Attributes of a memory none of whose reads uses a word written on the same cycle:
-#: synthesis need not make block RAM's unspecified result of such a read defined (it
-#: would, with flip-flops and multiplexers beside the RAM).
-NO_RW_CHECK = {"no_rw_check": 1}
-#: Tests set this to give every read of such a memory that collides with a write an
-#: unusable result (the complement of the word), as block RAM may, to show that no such
-#: read is ever used. Read at elaboration.
-POISON_COLLISIONS = False
-
-
-def read_data(m: Module, read: memory.ReadPort, write: memory.WritePort) -> Value:
-    """The data of a read port of a ``NO_RW_CHECK`` memory (poisoned as the tests ask).
-
-    With :data:`POISON_COLLISIONS`, a read whose address ``write`` writes on the same
-    cycle gives the complement of the word on the next.
-    """
-    if not POISON_COLLISIONS:
-        return read.data
-    collided = Signal(name="collided")
-    m.d.sync += collided.eq(write.en.any() & read.en & (write.addr == read.addr))
-    return Mux(collided, ~read.data, read.data)
-
 
 def fifo_lanes(link: LinkParams) -> int:
     """Bytes of a FIFO word: a duration with its ``last`` flag, or a rate, in whole bytes."""
@@ -145,7 +123,7 @@ class SegmentPlayer(wiring.Component):
 
         m.submodules.fifo = fifo = self.fifo
         wr = fifo.write_port(granularity=8)
-        rd = fifo.read_port()
+        rd = sync_read(m, fifo)
 
         wr_ptr    = Signal(range(depth_words))
         wr_base   = Signal(range(depth_words))

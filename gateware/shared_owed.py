@@ -46,43 +46,19 @@ backlog.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
 from amaranth.lib import memory, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.accumulator import ask_lines, ask_parts, ask_select, net_shape
+from dvgate.gateware.ram import NO_RW_CHECK, sync_read
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
 RAW, ZERO, UPPER, LOWER = 0, 1, 2, 3
 #: Block RAM, and no read-during-write logic: a channel's words are never read in a cycle
-#: that writes them (see the module docstring).
-_RAM_ATTRS = {"ram_style": "block", "no_rw_check": 1}
-
-
-@dataclass
-class _Read:
-    """A read port of a RAM that the pipeline writes: ``data`` is ``addr``'s word a cycle later."""
-
-    addr: Value
-    data: Value
-
-
-def _read_port(m: Module, mem: memory.Memory) -> _Read:
-    """A synchronous read of ``mem`` built as an asynchronous read and a register.
-
-    The same cycles as ``read_port(transparent_for=())``. Yosys (0.70) reads an
-    Amaranth synchronous port as one that must return the old word when the same cycle
-    writes it, which the iCE40 block RAM cannot, and adds a bypass register and a
-    multiplexer on the read data; a register that it merges into the port itself honours
-    ``no_rw_check`` and needs none.
-    """
-    port = mem.read_port(domain="comb")
-    data = Signal(mem.shape)
-    m.d.sync += data.eq(port.data)
-    return _Read(port.addr, data)
+#: that writes them (see the module docstring; the reads are ``sync_read``'s).
+_RAM_ATTRS = {"ram_style": "block", **NO_RW_CHECK}
 
 
 def cycle_bits(params: HardwareParams) -> int:
@@ -206,15 +182,15 @@ class SharedOwed(wiring.Component):
         for name in ("step_lo", "step_mid", "step_whole", "anchor", "handed", "owed_lo", "owed_mid",
                      "owed_whole", "counts"):
             m.submodules[name] = getattr(self, name)
-        anchor_rd, anchor_wr = _read_port(m, self.anchor), self.anchor.write_port()
-        handed_rd, handed_wr = _read_port(m, self.handed), self.handed.write_port()
-        lo_rd, lo_wr = _read_port(m, self.owed_lo), self.owed_lo.write_port()
-        mid_rd, mid_wr = _read_port(m, self.owed_mid), self.owed_mid.write_port()
-        whole_rd, whole_wr = _read_port(m, self.owed_whole), self.owed_whole.write_port()
+        anchor_rd, anchor_wr = sync_read(m, self.anchor), self.anchor.write_port()
+        handed_rd, handed_wr = sync_read(m, self.handed), self.handed.write_port()
+        lo_rd, lo_wr = sync_read(m, self.owed_lo), self.owed_lo.write_port()
+        mid_rd, mid_wr = sync_read(m, self.owed_mid), self.owed_mid.write_port()
+        whole_rd, whole_wr = sync_read(m, self.owed_whole), self.owed_whole.write_port()
         step_lo_rd = self.step_lo.read_port(transparent_for=())
         step_mid_rd = self.step_mid.read_port(transparent_for=())
         step_whole_rd = self.step_whole.read_port(transparent_for=())
-        counts_rd, counts_wr = _read_port(m, self.counts), self.counts.write_port()
+        counts_rd, counts_wr = sync_read(m, self.counts), self.counts.write_port()
 
         # Accepted hand-overs wait here for the visit that moves past their strobe.
         loaded = Signal(n)

@@ -12,14 +12,14 @@ import test_link_fuzz
 import test_pulse_counts
 import test_segments
 
-import dvgate.gateware.segments as segments
+import dvgate.gateware.ram as ram
 from dvgate.sim.link_bench import run_link_bytes
 from dvgate.sim.link_fuzz import MUTATIONS, FuzzSettings, check, generate
 
 
 @pytest.fixture(autouse=True)
 def poisoned(monkeypatch):
-    monkeypatch.setattr(segments, "POISON_COLLISIONS", True)
+    monkeypatch.setattr(ram, "POISON_COLLISIONS", True)
 
 
 def test_poisoning_is_in_force():
@@ -29,9 +29,9 @@ def test_poisoning_is_in_force():
     from amaranth.sim import Simulator
 
     m = Module()
-    m.submodules.mem = mem = memory.Memory(shape=8, depth=4, init=[0x11], attrs=segments.NO_RW_CHECK)
-    wr, rd = mem.write_port(), mem.read_port(transparent_for=())
-    data = segments.read_data(m, rd, wr)
+    m.submodules.mem = mem = memory.Memory(shape=8, depth=4, init=[0x11], attrs=ram.NO_RW_CHECK)
+    wr, rd = mem.write_port(), ram.sync_read(m, mem)
+    data = ram.read_data(m, rd, wr)
     seen = []
 
     async def bench(ctx):
