@@ -47,11 +47,11 @@ backlog.
 from __future__ import annotations
 
 from amaranth.hdl import Cat, Module, Mux, Signal, Value, signed
-from amaranth.lib import memory, wiring
+from amaranth.lib import data, memory, wiring
 from amaranth.lib.wiring import In, Out
 
 from dvgate.gateware.accumulator import ask_lines, ask_parts, ask_select, net_shape
-from dvgate.gateware.ram import NO_RW_CHECK, sync_read
+from dvgate.gateware.ram import NO_RW_CHECK, SyncRead, sync_read
 from dvgate.params import SHARED_DEPTH, HardwareParams
 
 #: How a stored owed amount reads: as stored, as 0, as the upper or the lower limit.
@@ -59,6 +59,21 @@ RAW, ZERO, UPPER, LOWER = 0, 1, 2, 3
 #: Block RAM, and no read-during-write logic: a channel's words are never read in a cycle
 #: that writes them (see the module docstring; the reads are ``sync_read``'s).
 _RAM_ATTRS = {"ram_style": "block", **NO_RW_CHECK}
+
+
+def visit_layout(params: HardwareParams) -> data.StructLayout:
+    """What every stage of the pipeline carries about the visit it works on.
+
+    ``valid``: a channel's visit (not a spare slot, not left to the next visit);
+    ``slot``: the channel; ``stb``: its target is a strobe; ``zero``: the owed amount
+    is 0 at the target (set from stage 2 on); ``dis``: disarmed all through the step.
+    """
+    return data.StructLayout({"valid": 1, "slot": range(params.shared_slots), "stb": 1, "zero": 1, "dis": 1})
+
+
+def _visits(tag: Value, channel: int) -> Value:
+    """The stage holding ``tag`` works on ``channel`` this cycle."""
+    return tag.valid & (tag.slot == channel)
 
 
 def cycle_bits(params: HardwareParams) -> int:
@@ -178,6 +193,7 @@ class SharedOwed(wiring.Component):
         cb = cycle_bits(p)
         d_bits = p.shared_d_bits
         nshape = net_shape(p)
+        visit = visit_layout(p)
 
         for name in ("step_lo", "step_mid", "step_whole", "anchor", "handed", "owed_lo", "owed_mid",
                      "owed_whole", "counts"):
@@ -284,16 +300,13 @@ class SharedOwed(wiring.Component):
         # The anchor's strobe is still ahead and still in view: its hand-over is not decided
         # yet. (A strobe that was in view and no longer is will not come: nothing is handed
         # over at it, and a new strobe may already be in this visit's window.)
-        skip = s1_skip
-        m.d.comb += anchor_wr.en.eq(s1_valid & ~skip)
+        m.d.comb += anchor_wr.en.eq(s1_valid & ~s1_skip)
         # Cleared once the strobe in view comes (its hand-over is then decided) or is gone.
         with m.If(~self.in_view):
             m.d.sync += pending.eq(0)
-        with m.Elif(s1_valid & ~skip & s1_stb):
+        with m.Elif(s1_valid & ~s1_skip & s1_stb):
             m.d.sync += pending.eq(pending | (1 << s1_slot))
-        r_valid  = Signal()
-        r_slot   = Signal.like(s1_slot)
-        r_stb    = Signal()
+        r        = Signal(visit)
         r_at_stb = Signal()
         r_before = Signal()
         r_after  = Signal()
@@ -302,9 +315,9 @@ class SharedOwed(wiring.Component):
         r_d_ea   = Signal(d_bits)
         r_d_te   = Signal(d_bits)
         m.d.sync += [
-            r_valid.eq(s1_valid & ~skip),
-            r_slot.eq(s1_slot),
-            r_stb.eq(s1_stb),
+            r.valid.eq(s1_valid & ~s1_skip),
+            r.slot.eq(s1_slot),
+            r.stb.eq(s1_stb),
             r_at_stb.eq(at_stb),
             # The change is at or before the anchor (or long ago); at or after the target.
             r_before.eq(s1_old | ea_less[-1]),
@@ -329,40 +342,34 @@ class SharedOwed(wiring.Component):
             # inside the step still adds the armed cycles before it, to see a saturation.
             zero.eq(dis_all | fall_in),
             d_eff.eq(Mux(rise_in, r_d_te, Mux(fall_in, r_d_ea, r_d_ta))),
-            step_lo_rd.addr.eq(Cat(d_eff, r_slot)),
-            mid_rd.addr.eq(r_slot),
+            step_lo_rd.addr.eq(Cat(d_eff, r.slot)),
+            mid_rd.addr.eq(r.slot),
         ]
         use_hand = Signal()
-        m.d.comb += use_hand.eq(loaded.bit_select(r_slot, 1) & r_at_stb & ~rise_in)
+        m.d.comb += use_hand.eq(loaded.bit_select(r.slot, 1) & r_at_stb & ~rise_in)
         consumed = Signal(n)
-        m.d.comb += consumed.eq(Mux(r_valid, 1 << r_slot, 0))
+        m.d.comb += consumed.eq(Mux(r.valid, 1 << r.slot, 0))
         # A load of this cycle wins over the visit that consumes the previous one.
         m.d.sync += loaded.eq((loaded & ~consumed) | self.load)
 
-        s2_valid = Signal()
-        s2_slot  = Signal.like(s1_slot)
+        s2       = Signal(visit)
         s2_d     = Signal(d_bits)
         s2_hand  = Signal()
         s2_code  = Signal(2)
         s2_copy  = Signal(nshape)
-        s2_zero  = Signal()
-        s2_dis   = Signal()
-        s2_stb   = Signal()
         s2_lo    = Signal(l1)     # the stored low chunk as the code reads it
         code_in  = Signal(2)
         # Arming inside the step restarts the owed amount from 0.
         m.d.comb += code_in.eq(Mux(rise_in, ZERO, handed_rd.data[:2]))
         m.d.sync += [
             s2_lo.eq(_read_frac(code_in, lo_rd.data)),
-            s2_valid.eq(r_valid),
-            s2_slot.eq(r_slot),
+            s2.eq(r),
             s2_d.eq(d_eff),
             s2_hand.eq(use_hand),
             s2_code.eq(code_in),
             s2_copy.eq(handed_rd.data[2:]),
-            s2_zero.eq(zero),
-            s2_dis.eq(dis_all),
-            s2_stb.eq(r_stb),
+            s2.zero.eq(zero),
+            s2.dis.eq(dis_all),
         ]
 
         # --- stage 3: low chunk -------------------------------------------------------------
@@ -371,34 +378,26 @@ class SharedOwed(wiring.Component):
         m.d.comb += [
             sum_lo.eq(s2_lo + step_lo_rd.data),
             hand_sub.eq(Mux(s2_hand, s2_copy, 0)),
-            lo_wr.addr.eq(s2_slot),
+            lo_wr.addr.eq(s2.slot),
             lo_wr.data.eq(sum_lo[:l1]),
-            lo_wr.en.eq(s2_valid),
-            step_mid_rd.addr.eq(Cat(s2_d, s2_slot)),
-            step_whole_rd.addr.eq(Cat(s2_d, s2_slot)),
-            whole_rd.addr.eq(s2_slot),
+            lo_wr.en.eq(s2.valid),
+            step_mid_rd.addr.eq(Cat(s2_d, s2.slot)),
+            step_whole_rd.addr.eq(Cat(s2_d, s2.slot)),
+            whole_rd.addr.eq(s2.slot),
         ]
-        s3_valid = Signal()
-        s3_slot  = Signal.like(s1_slot)
+        s3       = Signal(visit)
         s3_code  = Signal(2)
         s3_c1    = Signal()
         s3_lo    = Signal(l1)
         s3_hand  = Signal(nshape)
-        s3_zero  = Signal()
-        s3_dis   = Signal()
-        s3_stb   = Signal()
         s3_mid   = Signal(frac - l1)   # the stored middle chunk as the code reads it
         m.d.sync += [
             s3_mid.eq(_read_frac(s2_code, mid_rd.data)),
-            s3_valid.eq(s2_valid),
-            s3_slot.eq(s2_slot),
+            s3.eq(s2),
             s3_code.eq(s2_code),
             s3_c1.eq(sum_lo[l1]),
             s3_lo.eq(sum_lo[:l1]),
             s3_hand.eq(hand_sub),
-            s3_zero.eq(s2_zero),
-            s3_dis.eq(s2_dis),
-            s3_stb.eq(s2_stb),
         ]
 
         # --- stage 4: middle chunk; the whole part of the step less the hand-over -----------
@@ -407,23 +406,18 @@ class SharedOwed(wiring.Component):
         m.d.comb += [
             sum_mid.eq(s3_mid + step_mid_rd.data + s3_c1),
             step_w.eq(step_whole_rd.data.as_signed() - s3_hand),
-            mid_wr.addr.eq(s3_slot),
+            mid_wr.addr.eq(s3.slot),
             mid_wr.data.eq(sum_mid[:frac - l1]),
-            mid_wr.en.eq(s3_valid),
+            mid_wr.en.eq(s3.valid),
         ]
-        s4_valid = Signal()
-        s4_slot  = Signal.like(s1_slot)
+        s4       = Signal(visit)
         s4_whole = Signal(signed(p.owed_bits))   # the stored whole chunk as the code reads it
         s4_c2    = Signal()
         s4_lo_nz = Signal(_groups(l1))
         s4_mid   = Signal(frac - l1)
         s4_step  = Signal.like(step_w)
-        s4_zero  = Signal()
-        s4_dis   = Signal()
-        s4_stb   = Signal()
         m.d.sync += [
-            s4_valid.eq(s3_valid),
-            s4_slot.eq(s3_slot),
+            s4.eq(s3),
             s4_whole.eq(_read_whole(s3_code, whole_rd.data, p.owed_bits)),
             s4_c2.eq(sum_mid[frac - l1]),
             # Which 4-bit groups of the fraction are not zero, from registers (the sums end
@@ -431,9 +425,6 @@ class SharedOwed(wiring.Component):
             s4_lo_nz.eq(_nonzero_groups(s3_lo)),
             s4_mid.eq(sum_mid[:frac - l1]),
             s4_step.eq(step_w),
-            s4_zero.eq(s3_zero),
-            s4_dis.eq(s3_dis),
-            s4_stb.eq(s3_stb),
         ]
 
         # --- stage 5: whole part --------------------------------------------------------------
@@ -441,25 +432,17 @@ class SharedOwed(wiring.Component):
         hi      = Signal(signed(whole_w))
         m.d.comb += [
             hi.eq(s4_whole + s4_step + s4_c2),
-            whole_wr.addr.eq(s4_slot),
+            whole_wr.addr.eq(s4.slot),
             whole_wr.data.eq(hi[:p.owed_bits]),
-            whole_wr.en.eq(s4_valid),
+            whole_wr.en.eq(s4.valid),
         ]
-        s5_valid = Signal()
-        s5_slot  = Signal.like(s1_slot)
+        s5       = Signal(visit)
         s5_hi    = Signal.like(hi)
         s5_nz    = Signal()
-        s5_zero  = Signal()
-        s5_dis   = Signal()
-        s5_stb   = Signal()
         m.d.sync += [
-            s5_valid.eq(s4_valid),
-            s5_slot.eq(s4_slot),
+            s5.eq(s4),
             s5_hi.eq(hi),
             s5_nz.eq(s4_lo_nz.any() | s4_mid.any()),
-            s5_zero.eq(s4_zero),
-            s5_dis.eq(s4_dis),
-            s5_stb.eq(s4_stb),
         ]
 
         # --- stage 6: saturation and the code; the ask's comparisons --------------------------
@@ -471,43 +454,36 @@ class SharedOwed(wiring.Component):
             under.eq(s5_hi[-1] & ~s5_hi[p.owed_bits - 1:].all()),
         ]
         for i in range(n):
-            m.d.comb += self.clip[i].eq(s5_valid & (s5_slot == i) & ~s5_dis & (over | under))
+            m.d.comb += self.clip[i].eq(_visits(s5, i) & ~s5.dis & (over | under))
         parts = ask_parts(m, p, s5_hi, s5_nz)
-        s6_valid = Signal()
-        s6_slot  = Signal.like(s1_slot)
+        s6       = Signal(visit)
         s6_code  = Signal(2)
         s6_parts = Signal.like(parts)
-        s6_zero  = Signal()
-        s6_stb   = Signal()
         m.d.sync += [
-            s6_valid.eq(s5_valid),
-            s6_slot.eq(s5_slot),
-            s6_code.eq(Mux(s5_zero, ZERO, Mux(over, UPPER, Mux(under, LOWER, RAW)))),
+            s6.eq(s5),
+            s6_code.eq(Mux(s5.zero, ZERO, Mux(over, UPPER, Mux(under, LOWER, RAW)))),
             s6_parts.eq(parts),
-            s6_zero.eq(s5_zero),
-            s6_stb.eq(s5_stb),
         ]
 
         # --- stage 7: the hand-over ---------------------------------------------------------
-        ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6_zero)
-        ask_pos, ask_neg = ask_lines(m, p, s6_parts, ~s6_zero)
+        ask_n, ask_clmp = ask_select(m, p, s6_parts, ~s6.zero)
+        ask_pos, ask_neg = ask_lines(m, p, s6_parts, ~s6.zero)
         m.d.comb += [
-            handed_wr.addr.eq(s6_slot),
+            handed_wr.addr.eq(s6.slot),
             handed_wr.data.eq(Cat(s6_code, ask_n)),
-            handed_wr.en.eq(s6_valid),
+            handed_wr.en.eq(s6.valid),
         ]
         for i in range(n):
-            with m.If(s6_valid & (s6_slot == i) & s6_stb):
+            with m.If(_visits(s6, i) & s6.stb):
                 m.d.sync += [self.hand_pos[i].eq(ask_pos),
                              self.hand_neg[i].eq(ask_neg),
                              self.hand_clmp[i].eq(ask_clmp)]
 
-        self._books(m, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
-                    s6_valid, s6_slot, s6_stb, s6_parts, s6_zero, counts_rd, counts_wr)
+        self._books(m, r, s2, s3, s4, s6, s2_copy, s6_parts, counts_rd, counts_wr)
         return m
 
-    def _books(self, m: Module, r_valid, r_slot, r_stb, s2_slot, s2_copy, s3_valid, s3_slot, s4_valid, s4_slot,
-               s6_valid, s6_slot, s6_stb, s6_parts, s6_zero, counts_rd, counts_wr) -> None:
+    def _books(self, m: Module, r: Value, s2: Value, s3: Value, s4: Value, s6: Value, s2_copy: Value,
+               s6_parts: Value, counts_rd: SyncRead, counts_wr: memory.WritePort) -> None:
         """The emitters' pending counts, folded at every visit that moves the channel on.
 
         Stage 2 (the visit's cycle ``v + 2``) reads the emitter's flags, which clears them;
@@ -519,14 +495,14 @@ class SharedOwed(wiring.Component):
         p = self._params
         n = p.n
         cw = count_bits(p)
-        r = p.rest if p.scheme == "burst" else 0
+        rest_n = p.rest if p.scheme == "burst" else 0
         ones = (1 << cw) - 1
 
         # --- stage 2: read the flags ------------------------------------------------------
         for i in range(n):
             m.d.comb += [
-                self.snap[i].eq(r_valid & (r_slot == i)),
-                self.snap_acc[i].eq(r_valid & (r_slot == i) & r_stb),
+                self.snap[i].eq(_visits(r, i)),
+                self.snap_acc[i].eq(_visits(r, i) & r.stb),
             ]
         b3_tp      = Signal()
         b3_tn      = Signal()
@@ -534,25 +510,25 @@ class SharedOwed(wiring.Component):
         b3_rest    = Signal()
         b3_cleared = Signal()
         m.d.sync += [
-            b3_tp.eq(self.em_tp.bit_select(r_slot, 1)),
-            b3_tn.eq(self.em_tn.bit_select(r_slot, 1)),
-            b3_load.eq(self.em_lp.bit_select(r_slot, 1)),
-            b3_rest.eq(self.em_lp_rest.bit_select(r_slot, 1)),
-            b3_cleared.eq(self.em_cleared.bit_select(r_slot, 1)),
+            b3_tp.eq(self.em_tp.bit_select(r.slot, 1)),
+            b3_tn.eq(self.em_tn.bit_select(r.slot, 1)),
+            b3_load.eq(self.em_lp.bit_select(r.slot, 1)),
+            b3_rest.eq(self.em_lp_rest.bit_select(r.slot, 1)),
+            b3_cleared.eq(self.em_cleared.bit_select(r.slot, 1)),
         ]
 
         # --- stage 3: the loaded hand-over's pulses per line, less one ----------------------
         # (``s2_copy`` is the net count handed over at the anchor strobe: the load folded.)
         hand  = s2_copy.as_signed()
         neg   = hand[-1]
-        rest  = Mux(b3_rest, r, 0)
+        rest  = Mux(b3_rest, rest_n, 0)
         np_m1 = Signal(cw)
         nn_m1 = Signal(cw)
         m.d.comb += [
             np_m1.eq(rest - 1 + Mux(neg, 0, hand)),
             # -hand = ~hand + 1, so rest - 1 - hand = rest + ~hand.
             nn_m1.eq(Mux(neg, rest + ~hand, rest - 1)),
-            counts_rd.addr.eq(s2_slot),
+            counts_rd.addr.eq(s2.slot),
         ]
         b4_np = Signal(cw)
         b4_nn = Signal(cw)
@@ -574,9 +550,9 @@ class SharedOwed(wiring.Component):
         m.d.comb += [
             new_p.eq(_add_cin(old_p, b4_np, ~b4_tp, cw)),
             new_n.eq(_add_cin(old_n, b4_nn, ~b4_tn, cw)),
-            counts_wr.addr.eq(s3_slot),
+            counts_wr.addr.eq(s3.slot),
             counts_wr.data.eq(Cat(new_p, new_n)),
-            counts_wr.en.eq(s3_valid),
+            counts_wr.en.eq(s3.valid),
         ]
         b5_p = Signal(cw)
         b5_n = Signal(cw)
@@ -584,7 +560,7 @@ class SharedOwed(wiring.Component):
 
         # --- stage 5: the emitter's flags; the total --------------------------------------
         for i in range(n):
-            m.d.comb += self.fold[i].eq(s4_valid & (s4_slot == i))
+            m.d.comb += self.fold[i].eq(_visits(s4, i))
         m.d.comb += [
             self.fold_pos.eq(b5_p != 0),
             self.fold_neg.eq(b5_n != 0),
@@ -598,7 +574,7 @@ class SharedOwed(wiring.Component):
         # ternary), fits: the compare of stage 7 is then against registers only.
         rw = cw + 3
         top_ask = p.clamp if p.scheme == "burst" else 1
-        bases = [p.backlog - 2 * r, p.backlog - 2 * r + 1, p.backlog, p.backlog + 1]
+        bases = [p.backlog - 2 * rest_n, p.backlog - 2 * rest_n + 1, p.backlog, p.backlog + 1]
         # Each room is kept as ``nroom = -room - 1``, split at the width ``w`` of the
         # truncated amount: ``low_mag <= room`` is ``low_mag + nroom < 0``, and with
         # ``c`` the carry out of ``low_mag + nroom[:w]`` that is ``hi + c < 0`` for the
@@ -625,7 +601,7 @@ class SharedOwed(wiring.Component):
         # ``ask_select`` chooses it; which of them, and the bit for the first two, come
         # from registers, so only the truncated amount's carry is on the way to the emitter.
         parts = s6_parts
-        some  = ~s6_zero
+        some  = ~s6.zero
         bits  = []
         for k in range(4):
             fits, zero_fits = top_ok[k], room_n2[k] | room_n1[k]   # room >= 0: nroom < 0
@@ -640,7 +616,7 @@ class SharedOwed(wiring.Component):
                 bits.append(Mux(some & (parts.big_p | parts.big_n), fits, zero_fits))
         m.d.comb += self.acc_bits.eq(Cat(*bits))
         for i in range(n):
-            m.d.comb += self.acc_we[i].eq(s6_valid & (s6_slot == i) & s6_stb)
+            m.d.comb += self.acc_we[i].eq(_visits(s6, i) & s6.stb)
 
 
 def count_bits(params: HardwareParams) -> int:
