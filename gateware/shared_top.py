@@ -89,10 +89,6 @@ class SharedEmulator(wiring.Component):
 
         # ``stb & armed & ~ignoring``, as a register: the emitters' logic then starts from flip-flops.
         m.d.sync += take.eq(det.stb_next & armed_next & ~ignoring_next)
-        # The same register again for the status logic, kept apart so that neither copy
-        # drives more than the emitters' or the status's logic (a strobe's cycle is short).
-        take_st = Signal(attrs={"keep": 1})
-        m.d.sync += take_st.eq(det.stb_next & armed_next & ~ignoring_next)
 
         for i, (name, em, fs) in enumerate(zip(p.names, self.emitters, self.fault_stages, strict=True)):
             m.submodules[f"{name}_emit"] = em
@@ -125,11 +121,11 @@ class SharedEmulator(wiring.Component):
                 fs.armed_next.eq(armed_next),
                 pos_port.eq(fs.pos ^ p.active_low),
                 neg_port.eq(fs.neg ^ p.active_low),
-                overrun[i].eq(take_st & em.busy),
+                overrun[i].eq(take & em.busy),
                 clamped[i].eq(em.load & owed.hand_clmp[i]),
-                deferred[i].eq(take_st & ~em.accept),
+                deferred[i].eq(take & ~em.accept),
             ]
-        status_logic(m, self, take_st, overrun, clamped, deferred, owed.clip, late_events=True)
+        status_logic(m, self, take, overrun, clamped, deferred, owed.clip, late_events=True)
         return m
 
 
