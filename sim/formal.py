@@ -390,14 +390,18 @@ def _filter_span(params: HardwareParams) -> int:
 def plan(params: HardwareParams) -> list[Target]:
     """The three proofs for ``params``: accumulator and emitter as configured, the top small.
 
-    The shared datapath (``datapath == "shared"``) has no proofs: it is held to the
-    model cycle by cycle by simulation (``dvgate sim``, ``tests/test_shared.py``).
-
     Depths: the least at which the induction step can see past every register value
     that reset never gives (a timer or a filter count out of its range).
+
+    Raises
+    ------
+    UserError
+        For the shared datapath (``datapath == "shared"``), which has no proofs: it is
+        held to the model cycle by cycle by simulation (``dvgate sim``, ``tests/test_shared.py``).
     """
     if params.datapath == "shared":
-        return []
+        raise UserError("rate.datapath = 'shared': the proofs cover the per-channel datapath; the shared one is "
+                        "checked against the reference model cycle by cycle instead (dvgate sim, the test suite)")
     small = small_top_params(params)
     return [
         Target("accumulator", params, 3, AccumulatorProof),
@@ -504,11 +508,12 @@ def prove(params: HardwareParams, workdir: str | Path, *, targets: Sequence[str]
     Raises
     ------
     UserError
-        A tool is missing.
+        The shared datapath (:func:`plan`), or a tool is missing.
     """
+    chosen = plan(params)
     tools = find_tools()
     out = []
-    for target in plan(params):
+    for target in chosen:
         if targets is not None and target.name not in targets:
             continue
         out.append(_prove_one(target, Path(workdir), tools, timeout))

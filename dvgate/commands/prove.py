@@ -16,14 +16,13 @@ TARGETS = ("accumulator", "emitter", "top")
 
 def run(args: argparse.Namespace) -> int:
     config = config_from(args)
-    if config.hw.datapath == "shared":
-        raise UserError("rate.datapath = 'shared': the proofs cover the per-channel datapath; the shared one is "
-                        "checked against the reference model cycle by cycle instead (dvgate sim, the test suite)")
     if not 1 <= args.timeout <= 86400:
         raise UserError(f"--timeout = {args.timeout!r}: allowed: 1 to 86400 seconds")
-    from dvgate.sim.formal import failure_report, find_tools, prove, report_rows
+    from dvgate.sim.formal import failure_report, find_tools, plan, prove, report_rows
 
-    find_tools()  # a missing tool is an error before anything is written
+    # A config without proofs, or a missing tool, is an error before anything is written.
+    plan(config.hw)
+    find_tools()
     keep = args.workdir is not None
     if keep:
         workdir = Path(args.workdir)
