@@ -11,12 +11,10 @@ finds those from the stimulus and the books (:func:`unreported_saturation`).
 
 from __future__ import annotations
 
-import numpy as np
-
 from dvgate.params import HardwareParams
 from dvgate.sim.model import accumulate, armed_intervals, strobe_fates
-from dvgate.sim.stimulus import integral
-from dvgate.sim.trace import POS, RateChanges, RunResult, Stimulus
+from dvgate.sim.stimulus import integral, rate_pieces
+from dvgate.sim.trace import POS, RunResult, Stimulus
 
 
 def conservation_errors(params: HardwareParams, stim: Stimulus, result: RunResult,
@@ -107,7 +105,7 @@ def unreported_saturation(params: HardwareParams, stim: Stimulus, result: RunRes
         value = integral(params, stim, ch, armed, upto=start + 1) - handed * one
         if not lo <= value <= hi:
             return True
-        for first, stop, rate in _rate_pieces(params, stim, ch, start + 1, n_cyc):
+        for first, stop, rate in rate_pieces(params, stim, ch, start + 1, n_cyc):
             value, safe = accumulate(value, rate, stop - first, lo, hi)
             if safe < stop - first:
                 return True
@@ -119,26 +117,3 @@ def _net(result: RunResult, counts: list[tuple[int, int]] | None, ch: int, begin
     if counts is None:
         return sum(1 if e.line == POS else -1 for e in result.edges if e.channel == ch and e.rise > begin)
     return counts[ch][0] - counts[ch][1]
-
-
-def _rate_pieces(params: HardwareParams, stim: Stimulus, channel: int, start: int,
-                 stop: int) -> list[tuple[int, int, int]]:
-    """The channel's rate over the cycles ``[start, stop)`` as ``(first, stop, rate)`` pieces."""
-    rates = stim.rate_changes
-    if isinstance(rates, RateChanges):
-        # The array form: only the changes in force somewhere in the span become records.
-        mine = rates.channel == channel
-        cycles, values = rates.cycle[mine], rates.rate[mine]
-        lo = max(int(np.searchsorted(cycles, start, side="right")) - 1, 0)
-        hi = int(np.searchsorted(cycles, stop, side="left"))
-        later = list(zip(cycles[lo:hi].tolist(), values[lo:hi].tolist(), strict=True))
-    else:
-        later = [(c.cycle, c.rate) for c in rates if c.channel == channel and c.cycle < stop]
-    changes = [(0, params.rates[channel])] + later
-    out = []
-    for index, (cycle, rate) in enumerate(changes):
-        end = changes[index + 1][0] if index + 1 < len(changes) else stop
-        first, last = max(cycle, start), min(end, stop)
-        if last > first:
-            out.append((first, last, rate))
-    return out

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
-import math
 from typing import TYPE_CHECKING
+
+import numpy as np
 
 from dvgate.sim.trace import RateChange, RateChanges, Stimulus
 
@@ -40,22 +41,30 @@ def integral(params: HardwareParams, stim: Stimulus, channel: int, armed: list[t
     starts = [a for a, _ in armed if a <= upto]
     if not starts:
         return 0
-    begin = starts[-1]
+    return sum(rate * (last - first) for first, last, rate in rate_pieces(params, stim, channel, starts[-1], upto))
+
+
+def rate_pieces(params: HardwareParams, stim: Stimulus, channel: int, start: int,
+                stop: int) -> list[tuple[int, int, int]]:
+    """The channel's rate over the cycles ``[start, stop)`` as ``(first, stop, rate)`` pieces."""
     rates = stim.rate_changes
     if isinstance(rates, RateChanges):
-        # The array form: the channel's changes without a record per change.
+        # The array form: only the changes in force somewhere in the span become records.
         mine = rates.channel == channel
-        later = list(zip(rates.cycle[mine].tolist(), rates.rate[mine].tolist(), strict=True))
+        cycles, values = rates.cycle[mine], rates.rate[mine]
+        lo = max(int(np.searchsorted(cycles, start, side="right")) - 1, 0)
+        hi = int(np.searchsorted(cycles, stop, side="left"))
+        later = list(zip(cycles[lo:hi].tolist(), values[lo:hi].tolist(), strict=True))
     else:
-        later = [(c.cycle, c.rate) for c in rates if c.channel == channel]
+        later = [(c.cycle, c.rate) for c in rates if c.channel == channel and c.cycle < stop]
     changes = [(0, params.rates[channel])] + later
-    total = 0
+    out = []
     for index, (cycle, rate) in enumerate(changes):
-        stop = changes[index + 1][0] if index + 1 < len(changes) else math.inf
-        lo, hi = max(cycle, begin), min(stop, upto)
-        if hi > lo:
-            total += rate * int(hi - lo)
-    return total
+        end = changes[index + 1][0] if index + 1 < len(changes) else stop
+        first, last = max(cycle, start), min(end, stop)
+        if last > first:
+            out.append((first, last, rate))
+    return out
 
 
 def stimulus_for(config: Config, seconds: float, *, first_strobe: int | None = None) -> Stimulus:
