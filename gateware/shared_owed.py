@@ -482,6 +482,31 @@ class SharedOwed(wiring.Component):
         self._books(m, r, s2, s3, s4, s6, s2_copy, s6_parts, counts_rd, counts_wr)
         return m
 
+    def held(self, ctx, now: int) -> list[tuple[int, int] | None]:
+        """Per channel, the anchor cycle and the owed amount the block RAMs hold at ``now``.
+
+        For a simulation (``ctx`` an Amaranth testbench context): the stored words read
+        as the pipeline reads them. None for a channel whose visit is writing its words
+        (cycles ``v + 2 .. v + SHARED_DEPTH - 1`` of a visit at ``v``).
+        """
+        p = self._params
+        cb = cycle_bits(p)
+        l1, frac = chunks(p)
+        out: list[tuple[int, int] | None] = []
+        for i in range(p.n):
+            if 2 <= (now - i) % p.shared_slots <= SHARED_DEPTH - 1 and now >= i + 2:
+                out.append(None)
+                continue
+            # Cycle numbers are kept modulo 2**cb; the anchor is the one nearest ``now``.
+            a_mod = ctx.get(self.anchor.data[i]) & ((1 << cb) - 1)
+            cycle = now + ((a_mod - now + (1 << (cb - 1))) % (1 << cb)) - (1 << (cb - 1))
+            code = ctx.get(self.handed.data[i]) & 3
+            whole = ctx.get(self.owed_whole.data[i])
+            whole -= (whole >> (p.owed_bits - 1)) << p.owed_bits
+            raw = ctx.get(self.owed_lo.data[i]) | (ctx.get(self.owed_mid.data[i]) << l1) | (whole << frac)
+            out.append((cycle, {RAW: raw, ZERO: 0, UPPER: p.owed_max, LOWER: p.owed_min}[code]))
+        return out
+
     def _books(self, m: Module, r: Value, s2: Value, s3: Value, s4: Value, s6: Value, s2_copy: Value,
                s6_parts: Value, counts_rd: SyncRead, counts_wr: memory.WritePort) -> None:
         """The emitters' pending counts, folded at every visit that moves the channel on.

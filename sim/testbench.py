@@ -22,7 +22,7 @@ from amaranth.sim import Simulator
 
 from dvgate.gateware.faults import pack_faults
 from dvgate.gateware.shared_top import emulator_top
-from dvgate.params import IGNORE_CYCLES_BITS, SHARED_DEPTH, HardwareParams
+from dvgate.params import IGNORE_CYCLES_BITS, HardwareParams
 from dvgate.sim.trace import NEG, POS, ChannelState, Edge, RateChange, RateChanges, RunResult, Status, Stimulus
 
 __all__ = ["PLAN_PORTS", "InputWrites", "edges_from_levels", "input_plan", "input_writes", "run_amaranth",
@@ -418,7 +418,7 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
             results["channels"] = tuple(ChannelState(owed=None, pend_pos=None, pend_neg=None)
                                         for _ in top.emitters)
             if anchors is not None:
-                anchors[:] = _shared_anchors(ctx, top, params, n_cyc)
+                anchors[:] = top.owed.held(ctx, n_cyc)
         else:
             results["channels"] = tuple(
                 ChannelState(owed=ctx.get(acc.owed), pend_pos=ctx.get(em.pend_pos),
@@ -449,30 +449,6 @@ def run_amaranth(params: HardwareParams, stim: Stimulus, *,
         status=results["status"],
         channels=results["channels"],
     )
-
-
-def _shared_anchors(ctx, top, params: HardwareParams, n_cyc: int) -> list[tuple[int, int] | None]:
-    """Per channel, the anchor cycle and owed amount the shared datapath's block RAMs hold."""
-    from dvgate.gateware.shared_owed import LOWER, RAW, UPPER, ZERO, chunks, cycle_bits
-
-    owed = top.owed
-    slots, cb = params.shared_slots, cycle_bits(params)
-    l1, frac = chunks(params)
-    out: list[tuple[int, int] | None] = []
-    for i in range(params.n):
-        # The visit at v writes the channel's words at cycles v + 1 .. v + SHARED_DEPTH - 1.
-        if 2 <= (n_cyc - i) % slots <= SHARED_DEPTH - 1 and n_cyc >= i + 2:
-            out.append(None)
-            continue
-        a_mod = ctx.get(owed.anchor.data[i]) & ((1 << cb) - 1)
-        cycle = n_cyc + ((a_mod - n_cyc + (1 << (cb - 1))) % (1 << cb)) - (1 << (cb - 1))
-        code = ctx.get(owed.handed.data[i]) & 3
-        whole = ctx.get(owed.owed_whole.data[i])
-        whole -= (whole >> (params.owed_bits - 1)) << params.owed_bits
-        raw = ctx.get(owed.owed_lo.data[i]) | (ctx.get(owed.owed_mid.data[i]) << l1) | (whole << frac)
-        value = {RAW: raw, ZERO: 0, UPPER: params.owed_max, LOWER: params.owed_min}[code]
-        out.append((cycle, value))
-    return out
 
 
 def _member(dut: wiring.Component, path: str):
