@@ -327,7 +327,7 @@ def build(cfg: Config, pin_map: PinMap, out_dir: str | Path, *, plan_only: bool 
     env = {**os.environ, **tools}
     run = subprocess.run(["sh", f"build_{NAME}.sh"], cwd=out, env=env, capture_output=True, text=True)
     if run.returncode != 0:
-        _raise_if_too_big(out, pin_map, advice(cfg))
+        _raise_if_too_big(out, pin_map, result.advice)
         raise UserError(f"the toolchain failed (status {run.returncode}) in {out}:\n{_tail(run, out)}")
     bitstream = out / f"{NAME}{_BITSTREAM_SUFFIX[pin_map.family]}"
     result.bitstream = bitstream
