@@ -29,8 +29,8 @@ from amaranth.lib.wiring import In, Out
 from machine import describe
 from resources import bench_config
 
-from dvgate.build import find_tools
-from dvgate.gateware.accumulator import RateAccumulator, count_shape, net_shape
+from dvgate.build import find_tools, synth_options
+from dvgate.gateware.accumulator import RateAccumulator
 from dvgate.gateware.emitter import PulseEmitter
 from dvgate.gateware.faults import FaultStage
 from dvgate.gateware.top import component_verilog
@@ -40,24 +40,25 @@ CELLS = ("SB_LUT4", "SB_CARRY")
 
 
 class ConstantRate(wiring.Component):
-    """The accumulator with its rate tied to the config's first rate (as the bare emulator has it)."""
+    """The accumulator with its rate tied to the config's first rate (as the bare emulator has it).
+
+    Every other port of the accumulator is a port here, so synthesis keeps what it drives.
+    """
 
     def __init__(self, params: HardwareParams) -> None:
         self._params = params
-        super().__init__({
-            "take": In(1), "armed": In(1), "accept": In(1), "prepare": In(1),
-            "n": Out(net_shape(params)), "load": Out(1),
-            "new_pos": Out(count_shape(params)), "new_neg": Out(count_shape(params)),
-            "clamp_evt": Out(1), "sat_evt": Out(1),
-        })
+        self._acc = RateAccumulator(params)
+        super().__init__({name: member for name, member in self._acc.signature.members.items() if name != "rate"})
 
     def elaborate(self, platform) -> Module:
         m = Module()
-        m.submodules.acc = acc = RateAccumulator(self._params)
-        m.d.comb += [acc.rate.eq(self._params.rates[0]), acc.take.eq(self.take), acc.armed.eq(self.armed),
-                     acc.accept.eq(self.accept), acc.prepare.eq(self.prepare)]
-        for name in ("n", "load", "new_pos", "new_neg", "clamp_evt", "sat_evt"):
-            m.d.comb += getattr(self, name).eq(getattr(acc, name))
+        m.submodules.acc = acc = self._acc
+        m.d.comb += acc.rate.eq(self._params.rates[0])
+        for name, member in self.signature.members.items():
+            if member.flow == In:
+                m.d.comb += getattr(acc, name).eq(getattr(self, name))
+            else:
+                m.d.comb += getattr(self, name).eq(getattr(acc, name))
         return m
 
 
@@ -103,7 +104,8 @@ def up5k_fmax(width: int, work: Path, tools: dict[str, str]) -> tuple[float, int
     """Maximum frequency (MHz) and logic cells of a lone ``width``-bit accumulator on the UP5K."""
     name = f"acc{width}"
     component_verilog(LoneAccumulator(width), name, work / f"{name}.v")
-    subprocess.run([tools["YOSYS"], "-q", "-p", f"read_verilog {name}.v; synth_ice40 -top {name} -json {name}.json"],
+    synth = " ".join(["synth_ice40", *synth_options("iCE40UP5K")])
+    subprocess.run([tools["YOSYS"], "-q", "-p", f"read_verilog {name}.v; {synth} -top {name} -json {name}.json"],
                    cwd=work, check=True)
     done = subprocess.run([tools["NEXTPNR_ICE40"], "--up5k", "--package", "sg48", "--json", f"{name}.json",
                            "--freq", "48", "--pcf-allow-unconstrained", "--timing-allow-fail", "--seed", "1"],
